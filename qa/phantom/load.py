@@ -38,6 +38,17 @@ def load_phantom(path) -> Phantom:
     analysis = doc.raw("analysis", {})
     if not isinstance(analysis, dict):
         raise doc.error("analysis", "expected a mapping of analysis options per metric family")
+    field_xyz = None
+    if doc.has("field_mm"):
+        fd = doc.sub("field_mm")
+        field_xyz = []
+        for axis in ("x", "y", "z"):
+            lo, hi = fd.vector(axis, 2)
+            if not hi > lo:
+                raise fd.error(axis, f"expected [low, high] with high > low, got [{lo:g}, {hi:g}]")
+            field_xyz.append((lo, hi))
+        fd.reject_unknown()
+        field_xyz = tuple(field_xyz)
     objects = []
     seen = {}
     for item in doc.items("objects"):
@@ -47,7 +58,7 @@ def load_phantom(path) -> Phantom:
         seen[obj.id] = obj.line
         objects.append(obj)
     doc.reject_unknown()
-    phantom = Phantom(name, description, energy, tuple(objects), str(path), analysis)
+    phantom = Phantom(name, description, energy, tuple(objects), str(path), analysis, field_xyz)
     _check_arrangement(phantom, doc)
     return phantom
 

@@ -93,6 +93,8 @@ class Phantom:
     objects: tuple[PhantomObject, ...]
     source: str = ""
     analysis: Mapping = field(default_factory=dict)
+    #: ``((x0, x1), (y0, y1), (z0, z1))`` in mm: the region a simulation reconstructs.
+    field_xyz_mm: tuple | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "objects", tuple(self.objects))
