@@ -1,0 +1,23 @@
+"""The house style of Lacuna's plots (matplotlib's object API; no global state)."""
+
+from __future__ import annotations
+
+from matplotlib.figure import Figure
+
+#: Our palette: deep blue, rust, sage, sand, slate (never the only cue for meaning).
+PALETTE = ("#1b4965", "#c8553d", "#588157", "#d4a373", "#5c677d")
+
+
+def new_figure(width_in: float = 5.6, height_in: float = 2.8, *, ncols: int = 1):
+    """A figure with ``ncols`` axes styled alike; returns (figure, axes or list of axes)."""
+    fig = Figure(figsize=(width_in, height_in), dpi=150, layout="constrained")
+    axes = [fig.add_subplot(1, ncols, i + 1) for i in range(ncols)]
+    for ax in axes:
+        ax.grid(True, color="0.88", lw=0.6)
+        ax.set_axisbelow(True)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+        ax.tick_params(labelsize=7)
+        ax.xaxis.label.set_size(8)
+        ax.yaxis.label.set_size(8)
+    return fig, (axes[0] if ncols == 1 else axes)

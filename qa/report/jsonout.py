@@ -1,0 +1,47 @@
+"""The JSON results of a session, for other tools and spreadsheets.
+
+The contract (``README.md``, "Results as JSON")::
+
+    {"unit": str, "date": "YYYY-MM-DD", "profile": str, "overall": "pass|warning|fail",
+     "report": "<path of the PDF>",
+     "metrics": {NAME: {"value": float|null, "unit": str, "uncertainty": float|null,
+                        "verdict": "pass|warning|fail|not measured", "note": str}}}
+
+Further keys (phantom, tool version, analysis time, limits, baselines) may be added;
+the ones above keep their names and meaning.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+from ..fileio import write_text_atomic
+from ..session import SessionResult
+
+
+def _num(v):
+    return None if v is None or not math.isfinite(v) else float(v)
+
+
+def session_json(result: SessionResult, report_path: str | None) -> dict:
+    metrics = {}
+    for j in result.judged:
+        m = j.measurement
+        note = m.note
+        if j.reason:
+            note = f"{note}; {j.reason}" if note else j.reason
+        metrics[m.name] = {"value": _num(m.value), "unit": m.unit,
+                           "uncertainty": _num(m.uncertainty), "verdict": j.verdict,
+                           "note": note, "limit": j.limit_text,
+                           "baseline": _num(j.baseline)}
+    return {"unit": result.unit_id, "date": result.date, "profile": result.profile.name,
+            "overall": result.overall, "report": None if report_path is None else str(report_path),
+            "phantom": result.phantom.name, "tool_version": result.tool_version,
+            "analysed": result.analysed, "kind": result.kind,
+            "volume": dict(result.meta), "metrics": metrics}
+
+
+def write_json(result: SessionResult, path, report_path: str | None) -> None:
+    text = json.dumps(session_json(result, report_path), indent=2, ensure_ascii=False)
+    write_text_atomic(path, text + "\n")

@@ -1,0 +1,215 @@
+"""The dated PDF log of a session (reportlab): header, summary, plots, cautions, sign-off.
+
+The file is named ``<YYYY-MM-DD>_<unit>_<profile>.pdf`` and written atomically. Layout and
+wording are Lacuna's own.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+from reportlab.lib import colors
+from reportlab.lib.pagesizes import A4
+from reportlab.lib.units import mm
+from reportlab.pdfgen import canvas as rl_canvas
+from reportlab.platypus import (Image, KeepTogether, PageBreak, Paragraph, SimpleDocTemplate,
+                                Spacer, Table, TableStyle)
+
+from ..fileio import write_bytes_atomic
+from ..measure.base import families as registered_families
+from ..session import SessionResult
+from .style import ACCENT, FONT, FONT_BOLD, INK, RULE, SHADE, pdf_text, styles, verdict_mark
+
+CAUTION = ("These results support, and do not replace, the judgement of a qualified medical "
+           "physicist. Limits and test frequencies must follow local regulations and national "
+           "protocols. Lacuna checks equipment; it is not for diagnosis.")
+
+
+def log_name(result: SessionResult) -> str:
+    return f"{result.date}_{result.unit_id}_{result.profile.name}.pdf"
+
+
+def format_value(value, uncertainty) -> str:
+    """Value and uncertainty with matching decimals (3 significant figures)."""
+    if value is None:
+        return "—"
+    digits = 3
+    if value != 0:
+        import math
+        digits = max(0, min(4, 2 - int(math.floor(math.log10(abs(value))))))
+    text = f"{value:.{digits}f}"
+    if uncertainty is not None:
+        text += f" ± {uncertainty:.{digits}f}"
+    return text
+
+
+class _NumberedCanvas(rl_canvas.Canvas):
+    """Draws 'page N of M' and the running footer once the page count is known."""
+
+    footer_left = ""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._pages = []
+
+    def showPage(self):
+        self._pages.append(dict(self.__dict__))
+        self._startPage()
+
+    def save(self):
+        total = len(self._pages)
+        for state in self._pages:
+            self.__dict__.update(state)
+            self.setFont(FONT, 7)
+            self.setFillColor(INK)
+            self.drawString(18 * mm, 10 * mm, self.footer_left)
+            self.drawRightString(A4[0] - 18 * mm, 10 * mm, f"page {self._pageNumber} of {total}")
+            self.setStrokeColor(RULE)
+            self.line(18 * mm, 13 * mm, A4[0] - 18 * mm, 13 * mm)
+            super().showPage()
+        super().save()
+
+
+def _figure_image(fig, width_mm: float) -> Image:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=170)
+    w_in, h_in = fig.get_size_inches()
+    buf.seek(0)
+    width = width_mm * mm
+    return Image(buf, width=width, height=width * h_in / w_in)
+
+
+def _facts_table(rows, st) -> Table:
+    data = [[Paragraph(pdf_text(k), st["small"]), Paragraph(pdf_text(str(v)), st["cell"])]
+            for k, v in rows]
+    t = Table(data, colWidths=[38 * mm, 136 * mm])
+    t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"),
+                           ("LINEBELOW", (0, 0), (-1, -1), 0.25, RULE),
+                           ("TOPPADDING", (0, 0), (-1, -1), 1.5),
+                           ("BOTTOMPADDING", (0, 0), (-1, -1), 1.5)]))
+    return t
+
+
+def _header(result: SessionResult, st) -> list:
+    m = result.meta
+    unit_bits = [result.unit_id] + [str(m[k]) for k in ("manufacturer", "model") if k in m]
+    if "serial" in m:
+        unit_bits.append(f"serial {m['serial']}")
+    rows = [("Unit", " · ".join(unit_bits))]
+    for key, label in (("site", "Site"), ("institution", "Institution"), ("station", "Station"),
+                       ("software", "Software version")):
+        if key in m:
+            rows.append((label, m[key]))
+    rows += [("Acquired", m.get("acquired", result.date)), ("Analysed", result.analysed),
+             ("Phantom", f"{result.phantom.name} — {result.phantom.description}"),
+             ("Limit profile", f"{result.profile.name} — {result.profile.description}"),
+             ("Kind of check", result.kind), ("Lacuna version", result.tool_version)]
+    if "source_file" in m:
+        rows.append(("Volume", m["source_file"] + (f" (sha256 {m['checksum']})" if "checksum" in m else "")))
+    for key, label in (("reconstruction", "Reconstruction"), ("geometry", "Geometry")):
+        if key in m:
+            rows.append((label, m[key]))
+    return [Paragraph("Lacuna limited-angle QA log", st["title"]),
+            Paragraph(pdf_text(f"{result.unit_id} · {result.date} · profile {result.profile.name}"),
+                      st["body"]), Spacer(1, 3 * mm), _facts_table(rows, st),
+            Paragraph(pdf_text(CAUTION), st["caution"])]
+
+
+def _summary(result: SessionResult, st) -> list:
+    verdict = result.overall
+    head = Table([[verdict_mark(verdict, 10),
+                   Paragraph(f"<b>Overall: {verdict.upper()}</b> — "
+                             f"{sum(j.verdict == 'pass' for j in result.judged)} pass, "
+                             f"{sum(j.verdict == 'warning' for j in result.judged)} warning, "
+                             f"{sum(j.verdict == 'fail' for j in result.judged)} fail, "
+                             f"{sum(j.verdict == 'not measured' for j in result.judged)} not measured",
+                             st["body"])]], colWidths=[8 * mm, 166 * mm])
+    head.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "MIDDLE"),
+                              ("BACKGROUND", (0, 0), (-1, -1), SHADE)]))
+    rows = [[Paragraph(f"<b>{h}</b>", st["small"]) for h in
+             ("Metric", "Value ± u", "Unit", "Limit", "Baseline (change)", "", "Verdict")]]
+    for j in result.judged:
+        m = j.measurement
+        base = "—" if j.baseline is None else format_value(j.baseline, None)
+        if j.change is not None:
+            base += f" ({j.change:+.3g})"
+        rows.append([Paragraph(pdf_text(m.name), st["cell"]),
+                     Paragraph(format_value(m.value, m.uncertainty), st["cell"]),
+                     Paragraph(pdf_text(m.unit), st["cell"]),
+                     Paragraph(pdf_text(j.limit_text or "—"), st["cell"]),
+                     Paragraph(pdf_text(base), st["cell"]), verdict_mark(j.verdict),
+                     Paragraph(j.verdict, st["cell"])])
+    t = Table(rows, colWidths=[30 * mm, 27 * mm, 13 * mm, 58 * mm, 24 * mm, 5 * mm, 17 * mm],
+              repeatRows=1)
+    t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "MIDDLE"),
+                           ("LINEBELOW", (0, 0), (-1, 0), 0.8, ACCENT),
+                           ("LINEBELOW", (0, 1), (-1, -1), 0.25, RULE),
+                           ("ROWBACKGROUNDS", (0, 1), (-1, -1), [colors.white, SHADE])]))
+    notes = [Paragraph(pdf_text(f"{j.name}: {j.measurement.note}" + (f" ({j.reason})" if j.reason else "")),
+                       st["small"])
+             for j in result.judged if j.verdict == "not measured" or j.reason]
+    return [Paragraph("Summary", st["h2"]), head, Spacer(1, 2 * mm), t, Spacer(1, 1 * mm)] + notes
+
+
+def _sections(result: SessionResult, volume, st) -> list:
+    from .overview import overview_figure
+
+    out = [PageBreak(), Paragraph("Where the test objects were found", st["h2"])]
+    pose = result.layout.pose
+    out.append(Paragraph(pdf_text(
+        f"Pose: shift ({pose.shift_xy_mm[0]:.2f}, {pose.shift_xy_mm[1]:.2f}) mm, rotation "
+        f"{pose.rotation_deg:.2f}°, {'mirrored' if pose.mirrored else 'not mirrored'}, "
+        f"residual {pose.residual_mm:.2f} mm."), st["body"]))
+    if volume is not None:
+        out.append(_figure_image(overview_figure(volume, result.families, result.layout), 150))
+    by_name = {f.name: f for f in registered_families()}
+    for fam in result.families:
+        family = by_name.get(fam.family)
+        title = family.title if family else fam.family
+        block = [Paragraph(pdf_text(title), st["h2"])]
+        for m in fam.measurements:
+            block.append(Paragraph(pdf_text(
+                f"{m.name} = {format_value(m.value, m.uncertainty)} {m.unit}"
+                + (f" — {m.note}" if m.note else "")), st["small"]))
+        fig = family.plot(fam) if family and family.plot else None
+        if fig is not None:
+            block.append(_figure_image(fig, 160))
+        out.append(KeepTogether(block))
+    return out
+
+
+def _closing(st) -> list:
+    sign = Table([["Checked by (name)", ""], ["Signature", ""], ["Date", ""],
+                  ["Remarks", ""]], colWidths=[40 * mm, 134 * mm], rowHeights=[9 * mm] * 3 + [22 * mm])
+    sign.setStyle(TableStyle([("FONT", (0, 0), (-1, -1), FONT, 8),
+                              ("GRID", (0, 0), (-1, -1), 0.4, RULE),
+                              ("VALIGN", (0, 0), (-1, -1), "TOP")]))
+    return [Paragraph("Cautions", st["h2"]), Paragraph(pdf_text(CAUTION), st["body"]),
+            Paragraph("Patient identifiers found in image headers are never copied into this "
+                      "log, the JSON results or the history database.", st["body"]),
+            Paragraph("Sign-off", st["h2"]), sign]
+
+
+def render_pdf(result: SessionResult, volume=None, *, extra_pages=()) -> bytes:
+    """The log as PDF bytes. ``extra_pages`` are flowables (trend or comparison pages)."""
+    st = styles()
+    buf = io.BytesIO()
+    doc = SimpleDocTemplate(buf, pagesize=A4, leftMargin=18 * mm, rightMargin=18 * mm,
+                            topMargin=15 * mm, bottomMargin=18 * mm,
+                            title=f"Lacuna QA log {result.date} {result.unit_id}",
+                            subject=f"{result.profile.name} check of {result.unit_id} with "
+                                    f"phantom {result.phantom.name}: {result.overall}",
+                            creator=f"Lacuna {result.tool_version}", author="Lacuna")
+    story = _header(result, st) + _summary(result, st) + _sections(result, volume, st)
+    story += list(extra_pages) + _closing(st)
+    canvas_class = type("LogCanvas", (_NumberedCanvas,),
+                        {"footer_left": f"Lacuna QA log · {result.unit_id} · {result.date}"})
+    doc.build(story, canvasmaker=canvas_class)
+    return buf.getvalue()
+
+
+def write_pdf(result: SessionResult, out_dir, volume=None, *, extra_pages=()) -> Path:
+    path = Path(out_dir) / log_name(result)
+    write_bytes_atomic(path, render_pdf(result, volume, extra_pages=extra_pages))
+    return path
