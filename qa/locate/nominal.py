@@ -42,8 +42,9 @@ def _find_bead(volume: Volume, placed: Placed, polarity: float, options) -> Plac
     smooth = ndimage.gaussian_filter(block, (0.0, r_px, r_px))
     peak = np.unravel_index(int(np.argmax(smooth)), smooth.shape)
     noise = 1.4826 * np.median(np.abs(smooth - np.median(smooth)))
-    snr = smooth[peak] / noise if noise > 0 else np.inf
-    if not np.isfinite(snr) or snr < min_snr:
+    # A noiseless volume (simulation) has no noise to compare with: any peak counts.
+    snr = smooth[peak] / noise if noise > 0 else (np.inf if smooth[peak] > 0 else 0.0)
+    if snr < min_snr:
         return Placed(placed.obj, placed.shape, False,
                       f"{placed.id} not found near {where} (peak {snr:.1f} x noise, "
                       f"needs {min_snr:g})")

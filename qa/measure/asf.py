@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..analysis.bead import bead_signals
-from ..analysis.curves import half_max_width, parabolic_peak
+from ..analysis.curves import half_max_width, peaks_and_widths, spline_peak
 from ..errors import NotMeasurable
 from .base import FamilyResult, Measurement, MetricFamily, MetricSpec, Roi, register
 
@@ -48,18 +48,14 @@ def measure_asf(volume, layout, settings=None) -> FamilyResult:
         return FamilyResult(FAMILY, tuple(Measurement.missing(n, u, str(exc)) for n, u in names))
     z = sig.z_mm
     width = half_max_width(z, asf)
-    z_peak = parabolic_peak(z, contrast)
+    z_peak, _ = spline_peak(z, contrast)
     nominal_z = bead.obj.shape.centre_xyz_mm[2]
     # Uncertainty: redraw each plane's contrast with the SD of a bead-sized background
     # mean and repeat the analysis (Monte Carlo propagation, seeded).
     rng = np.random.default_rng(20040501)
-    widths, peaks = [], []
-    for _ in range(N_DRAWS):
-        c = contrast + rng.normal(0.0, sig.roi_mean_sd)
-        w = half_max_width(z, c / c.max())
-        if w is not None:
-            widths.append(w[0])
-        peaks.append(parabolic_peak(z, c))
+    draws = contrast[:, None] + rng.normal(0.0, 1.0, (len(z), N_DRAWS)) * sig.roi_mean_sd[:, None]
+    peaks, _, widths, _, _ = peaks_and_widths(z, draws)
+    widths = widths[np.isfinite(widths)]
     meas = []
     if width is None:
         meas.append(Measurement.missing("asf_fwhm", "mm", "the ASF does not fall to half its "

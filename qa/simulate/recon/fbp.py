@@ -29,7 +29,7 @@ def ramp_kernel_response(n_pad: int, pitch_mm: float) -> np.ndarray:
 
 
 def dbt_filter(n_pad: int, pitch_mm: float, *, apodisation_cutoff: float = 1.0,
-               slice_thickness_cutoff: float = 0.5, low_frequency_keep: float = 0.0) -> np.ndarray:
+               slice_thickness_cutoff: float = 0.5, ramp_floor: float = 0.05) -> np.ndarray:
     """The combined filter along u, sampled at the FFT frequencies of ``n_pad`` points.
 
     Parameters
@@ -38,9 +38,11 @@ def dbt_filter(n_pad: int, pitch_mm: float, *, apodisation_cutoff: float = 1.0,
         Cut-off of the Hann spectral apodisation, as a fraction of Nyquist.
     slice_thickness_cutoff : float
         Cut-off of the Hann slice-thickness filter as a fraction of Nyquist (1: off).
-    low_frequency_keep : float
-        Fraction of the DC term put back (0: a pure ramp, which removes the mean of
-        each plane; 1: the low frequencies of shift-and-add kept).
+    ramp_floor : float
+        The ramp is not allowed below this fraction of its value at Nyquist (0: a
+        pure ramp, which removes each plane's mean and the contrast of large objects;
+        0.05, the default, keeps part of the low frequencies, as the spectral shaping of Mertelmeier
+        et al. 2006 does).
     """
     f = np.abs(np.fft.fftfreq(n_pad, d=pitch_mm))
     nyq = 0.5 / pitch_mm
@@ -52,14 +54,14 @@ def dbt_filter(n_pad: int, pitch_mm: float, *, apodisation_cutoff: float = 1.0,
 
     window = hann(apodisation_cutoff) * (hann(slice_thickness_cutoff)
                                          if slice_thickness_cutoff < 1.0 else 1.0)
-    return ramp * window + low_frequency_keep * ramp[1] * (f == 0)
+    return np.maximum(ramp, ramp_floor * nyq) * window
 
 
-@register("fbp", "filtered backprojection (ramp, Hann apodisation, slice-thickness filter)")
+@register("fbp", "filtered backprojection (floored ramp, Hann apodisation, slice-thickness filter)")
 def filtered_backprojection(projections: Projections, grid: ReconGrid, *,
                             apodisation_cutoff: float = 1.0,
                             slice_thickness_cutoff: float = 0.5,
-                            low_frequency_keep: float = 0.0) -> np.ndarray:
+                            ramp_floor: float = 0.05) -> np.ndarray:
     """FBP; values approximate attenuation (1/mm) with the angular step of the arc.
 
     Notes
@@ -73,8 +75,7 @@ def filtered_backprojection(projections: Projections, grid: ReconGrid, *,
     cols_n = g.detector.columns
     n_pad = 1 << int(np.ceil(np.log2(2 * cols_n)))
     h = dbt_filter(n_pad, g.detector.pitch_mm, apodisation_cutoff=apodisation_cutoff,
-                   slice_thickness_cutoff=slice_thickness_cutoff,
-                   low_frequency_keep=low_frequency_keep)
+                   slice_thickness_cutoff=slice_thickness_cutoff, ramp_floor=ramp_floor)
     spec = np.fft.rfft(projections.data, n=n_pad, axis=2)
     filtered = np.fft.irfft(spec * h[: n_pad // 2 + 1], n=n_pad, axis=2)[:, :, :cols_n]
     d_theta = np.radians((max(g.angles_deg) - min(g.angles_deg)) / max(g.n_views - 1, 1))

@@ -1,0 +1,71 @@
+"""Writing a judged session out: PDF log, JSON results and the history, all or nothing.
+
+The log and the JSON are rendered in memory and written atomically; the session is then
+recorded in the history in one transaction. If recording fails, the two files just
+written are removed again, so a failed run leaves neither a log without a history entry
+nor a history entry without its log.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+from .fileio import write_bytes_atomic
+from .history import History
+from .history.records import MeasurementRecord, SessionRecord, unit_info_from
+from .report.jsonout import session_json
+from .report.pdf import log_name, render_pdf
+from .session import SessionResult
+
+
+@dataclass(frozen=True)
+class Published:
+    report: Path
+    json: Path | None
+    session_id: int | None
+
+
+def session_record(result: SessionResult, report_path: str) -> SessionRecord:
+    """The history's record of a judged session."""
+    ms = tuple(MeasurementRecord(j.name, j.measurement.value, j.measurement.unit,
+                                 j.measurement.uncertainty, j.verdict, j.measurement.note,
+                                 j.limit_text) for j in result.judged)
+    return SessionRecord(
+        unit_id=result.unit_id, acquired=result.meta.get("acquired", result.date),
+        analysed=result.analysed, phantom=result.phantom.name, profile=result.profile.name,
+        tool_version=result.tool_version, overall=result.overall, measurements=ms,
+        unit_info=unit_info_from(result.meta), source=str(result.meta.get("source_file", "")),
+        checksum=str(result.meta.get("checksum", "")), report_path=report_path,
+        kind=result.kind)
+
+
+def baselines_for(history_path, unit_id: str, phantom: str) -> dict[str, float]:
+    """The unit's baseline values in force now (empty when none, or no database yet)."""
+    if history_path is None or not Path(history_path).exists():
+        return {}
+    with History.open(history_path) as h:
+        return {k: v.value for k, v in h.baseline(unit_id, phantom).items()}
+
+
+def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_path=None,
+            extra_pages=()) -> Published:
+    """Write the log (and JSON) and record the session; see the module's notes."""
+    out_dir = Path(out_dir)
+    report = out_dir / log_name(result)
+    pdf = render_pdf(result, volume, extra_pages=extra_pages)
+    text = json.dumps(session_json(result, str(report)), indent=2, ensure_ascii=False) + "\n"
+    written = [write_bytes_atomic(report, pdf)]
+    try:
+        if json_path is not None:
+            written.append(write_bytes_atomic(json_path, text.encode("utf-8")))
+        session_id = None
+        if history_path is not None:
+            with History.open(history_path) as h:
+                session_id = h.record(session_record(result, str(report)))
+    except BaseException:
+        for path in written:
+            path.unlink(missing_ok=True)
+        raise
+    return Published(report, None if json_path is None else Path(json_path), session_id)
