@@ -38,3 +38,19 @@ def write_bytes_atomic(path, data: bytes) -> Path:
 
 def write_text_atomic(path, text: str) -> Path:
     return write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def sha256_of(path, *, chunk: int = 1 << 20) -> str:
+    """SHA-256 of a file, or of a folder's files (sorted by relative path, names included)."""
+    import hashlib
+
+    path = Path(path)
+    h = hashlib.sha256()
+    files = [path] if path.is_file() else sorted(p for p in path.rglob("*") if p.is_file())
+    for f in files:
+        if f is not path:
+            h.update(str(f.relative_to(path)).encode("utf-8") + b"\0")
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(chunk), b""):
+                h.update(block)
+    return h.hexdigest()

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from ..fileio import sha256_of
 from ..io import read_volume
 from ..judge import load_profile
 from ..phantom import load_phantom
@@ -43,7 +44,10 @@ def run(args) -> int:
     phantom = load_phantom(existing_file(args.phantom, "phantom definition"))
     profile = load_profile(existing_file(args.limits, "limit profile"))
     profile.check_applies(phantom=phantom.name)
-    volume = read_volume(existing_file(args.volume, "volume"))
+    source = existing_file(args.volume, "volume")
+    volume = read_volume(source)
+    volume = volume.with_meta(source_file=str(volume.meta.get("source_file", source)),
+                              checksum=sha256_of(source))
     unit = unit_from(volume, args.unit)
     hist = history_path(args)
     baselines = baselines_for(hist, unit, phantom.name)

@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 from .. import PROJECT_ROOT
+from ..fileio import sha256_of
 from ..io import write_dicom
 from ..judge import load_profile
 from ..phantom import load_phantom
@@ -57,7 +58,7 @@ def run(args) -> int:
     if not args.no_volume:
         vol_path = out / f"{today}_{DEMO_UNIT['serial']}_volume.dcm"
         write_dicom(volume, vol_path)
-        volume = volume.with_meta(source_file=str(vol_path))
+        volume = volume.with_meta(source_file=str(vol_path), checksum=sha256_of(vol_path))
         print(f"volume:  {vol_path}")
     hist = history_path(args)
     result = judge_session(volume, phantom, profile, unit_id=DEMO_UNIT["serial"],

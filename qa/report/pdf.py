@@ -7,6 +7,7 @@ wording are Lacuna's own.
 from __future__ import annotations
 
 import io
+import math
 from pathlib import Path
 
 from reportlab.lib import colors
@@ -30,17 +31,34 @@ def log_name(result: SessionResult) -> str:
     return f"{result.date}_{result.unit_id}_{result.profile.name}.pdf"
 
 
-def format_value(value, uncertainty) -> str:
-    """Value and uncertainty with matching decimals (3 significant figures)."""
+def format_value(value, uncertainty=None) -> str:
+    """A value and its uncertainty rounded alike.
+
+    With an uncertainty, both are given to the decimal place of the uncertainty's second
+    significant digit (the usual way of quoting a result with its standard uncertainty);
+    without one, the value has three significant digits.
+
+    Examples
+    --------
+    >>> format_value(3.14159, 0.0123)
+    '3.142 ± 0.012'
+    >>> format_value(0.000123456, 0.0000045)
+    '0.0001235 ± 0.0000045'
+    >>> format_value(1234.5)
+    '1234'
+    """
     if value is None:
         return "—"
-    digits = 3
-    if value != 0:
-        import math
-        digits = max(0, min(4, 2 - int(math.floor(math.log10(abs(value))))))
-    text = f"{value:.{digits}f}"
+    if uncertainty is not None and uncertainty > 0:
+        decimals = 1 - math.floor(math.log10(uncertainty))
+    elif value != 0:
+        decimals = 2 - math.floor(math.log10(abs(value)))
+    else:
+        decimals = 3
+    decimals = int(min(10, max(0, decimals)))
+    text = f"{value:.{decimals}f}"
     if uncertainty is not None:
-        text += f" ± {uncertainty:.{digits}f}"
+        text += f" ± {uncertainty:.{decimals}f}"
     return text
 
 
@@ -146,9 +164,16 @@ def _summary(result: SessionResult, st) -> list:
                            ("LINEBELOW", (0, 0), (-1, 0), 0.8, ACCENT),
                            ("LINEBELOW", (0, 1), (-1, -1), 0.25, RULE),
                            ("ROWBACKGROUNDS", (0, 1), (-1, -1), [colors.white, SHADE])]))
-    notes = [Paragraph(pdf_text(f"{j.name}: {j.measurement.note}" + (f" ({j.reason})" if j.reason else "")),
-                       st["small"])
-             for j in result.judged if j.verdict == "not measured" or j.reason]
+    notes = [Paragraph(pdf_text(f"{j.name}: {j.measurement.note}"), st["small"])
+             for j in result.judged if j.verdict == "not measured"]
+    if any(j.limit is not None and j.limit.constancy is not None and j.baseline is None
+           for j in result.judged):
+        notes.append(Paragraph("No baseline is stored for this unit and phantom: constancy "
+                               "limits were not judged.", st["small"]))
+    unlimited = [j.name for j in result.judged if j.limit is None]
+    if unlimited:
+        notes.append(Paragraph(pdf_text("Reported without a limit in this profile: "
+                                        + ", ".join(unlimited) + "."), st["small"]))
     return [Paragraph("Summary", st["h2"]), head, Spacer(1, 2 * mm), t, Spacer(1, 1 * mm)] + notes
 
 

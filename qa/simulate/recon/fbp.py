@@ -16,6 +16,7 @@ import numpy as np
 from ..acquire import Projections
 from . import register
 from .grid import ReconGrid, plane_taps, sample
+from .planes import by_plane
 
 
 def ramp_kernel_response(n_pad: int, pitch_mm: float) -> np.ndarray:
@@ -79,12 +80,13 @@ def filtered_backprojection(projections: Projections, grid: ReconGrid, *,
     spec = np.fft.rfft(projections.data, n=n_pad, axis=2)
     filtered = np.fft.irfft(spec * h[: n_pad // 2 + 1], n=n_pad, axis=2)[:, :, :cols_n]
     d_theta = np.radians((max(g.angles_deg) - min(g.angles_deg)) / max(g.n_views - 1, 1))
-    out = np.zeros(grid.shape, dtype=np.float32)
     sources = g.nominal_sources()
-    for k, z in enumerate(grid.z_mm):
+
+    def plane(z: float) -> np.ndarray:
         acc = np.zeros(grid.shape[1:])
         for i, src in enumerate(sources):
             cols, rows = plane_taps(src, z, grid, g.detector)
             acc += sample(filtered[i], cols, rows)
-        out[k] = d_theta * acc
-    return out
+        return d_theta * acc
+
+    return by_plane(plane, grid)

@@ -13,19 +13,21 @@ import numpy as np
 from ..acquire import Projections
 from . import register
 from .grid import ReconGrid, plane_taps, sample
+from .planes import by_plane
 
 
 @register("saa", "shift-and-add (Niklason et al. 1997)")
 def shift_and_add(projections: Projections, grid: ReconGrid) -> np.ndarray:
     g = projections.geometry
-    out = np.zeros(grid.shape, dtype=np.float32)
     sources = g.nominal_sources()
-    for k, z in enumerate(grid.z_mm):
+
+    def plane(z: float) -> np.ndarray:
         acc = np.zeros(grid.shape[1:])
         count = np.zeros(grid.shape[1:])
         for i, src in enumerate(sources):
             cols, rows = plane_taps(src, z, grid, g.detector)
             acc += sample(projections.data[i], cols, rows)
             count += rows.valid[:, None] & cols.valid[None, :]
-        out[k] = acc / np.maximum(count, 1)
-    return out
+        return acc / np.maximum(count, 1)
+
+    return by_plane(plane, grid)
