@@ -60,6 +60,74 @@ def transmission(phantom: Phantom, geometry: DbtGeometry, view: int) -> np.ndarr
     return total
 
 
+def expected_transmissions(phantom: Phantom, geometry: DbtGeometry, *,
+                           progress: bool = False) -> np.ndarray:
+    """Expected transmission of every view, ``(views, rows, columns)`` float32.
+
+    This is the expensive, noiseless part of a simulation; :func:`detect` turns it into
+    projections, so several exposures of one phantom (other seeds, doses or detector
+    states) need it only once.
+    """
+    out = np.empty((geometry.n_views,) + geometry.detector.shape, dtype=np.float32)
+
+    def one_view(i: int) -> None:
+        out[i] = transmission(phantom, geometry, i)
+
+    with ThreadPoolExecutor(max_workers=workers()) as pool:
+        jobs = pool.map(one_view, range(geometry.n_views))
+        if progress:
+            from tqdm import tqdm
+            jobs = tqdm(jobs, total=geometry.n_views, desc="projections", unit="view",
+                        leave=False)
+        for _ in jobs:
+            pass
+    return out
+
+
+def detect(transmissions: np.ndarray, geometry: DbtGeometry, *, seed: int | None = 0,
+           noise: bool = True) -> Projections:
+    """Detected, log-normalised projections from expected transmissions.
+
+    Notes
+    -----
+    With ``N0 = photons_per_pixel`` the absorbed quanta are ``Poisson(N0 T)``; the
+    detector then spreads each pixel's signal by a Gaussian of SD
+    ``detector.blur_sd_mm`` (light spread in a scintillator, which blurs the noise too)
+    and adds ``Normal(0, electronic_sd)``. The signal is clipped below at 0.5 quanta so
+    the logarithm stays finite, and ``-ln(N / N0)`` is returned. Without blur the
+    variance of ``-ln(N/N0)`` is close to ``1 / (N0 T)`` for large counts (first-order
+    error propagation, common practice). Noiseless projections are ``-ln`` of the
+    (blurred) expected transmission.
+    """
+    from scipy.ndimage import gaussian_filter
+
+    n0 = geometry.photons_per_pixel
+    noisy = noise and n0 is not None
+    blur_px = geometry.detector.blur_sd_mm / geometry.detector.pitch_mm
+    # One independent stream per view: the result does not depend on thread scheduling.
+    streams = np.random.SeedSequence(seed).spawn(geometry.n_views)
+    out = np.empty(transmissions.shape, dtype=np.float32)
+
+    def one_view(i: int) -> None:
+        t = transmissions[i].astype(np.float64)
+        if not noisy:
+            if blur_px > 0:
+                t = gaussian_filter(t, blur_px, mode="nearest")
+            out[i] = -np.log(np.maximum(t, 1e-300))
+            return
+        rng = np.random.default_rng(streams[i])
+        counts = rng.poisson(n0 * t).astype(np.float64)
+        if blur_px > 0:
+            counts = gaussian_filter(counts, blur_px, mode="nearest")
+        if geometry.electronic_sd > 0:
+            counts += rng.normal(0.0, geometry.electronic_sd, size=counts.shape)
+        out[i] = -np.log(np.maximum(counts, 0.5) / n0)
+
+    with ThreadPoolExecutor(max_workers=workers()) as pool:
+        list(pool.map(one_view, range(geometry.n_views)))
+    return Projections(out, geometry, seed if noisy else None)
+
+
 def simulate_projections(phantom: Phantom, geometry: DbtGeometry, *, seed: int | None = 0,
                          noise: bool = True, progress: bool = False) -> Projections:
     """Simulate every view of a DBT acquisition of ``phantom``.
@@ -78,39 +146,7 @@ def simulate_projections(phantom: Phantom, geometry: DbtGeometry, *, seed: int |
     Returns
     -------
     Projections
-        ``-ln(N / N0)`` per pixel; noiseless values are ``-ln`` of the expected
-        transmission.
-
-    Notes
-    -----
-    With ``N0 = photons_per_pixel``, the detected quanta are
-    ``N ~ Poisson(N0 T) + Normal(0, electronic_sd)``, clipped below at 0.5 quanta so
-    the logarithm stays finite. The variance of ``-ln(N/N0)`` is then close to
-    ``1 / (N0 T)`` for large counts (first-order error propagation, common practice).
+        ``-ln(N / N0)`` per pixel, see :func:`detect`.
     """
-    n0 = geometry.photons_per_pixel
-    noisy = noise and n0 is not None
-    # One independent stream per view: the result does not depend on thread scheduling.
-    streams = np.random.SeedSequence(seed).spawn(geometry.n_views)
-    out = np.empty((geometry.n_views,) + geometry.detector.shape, dtype=np.float32)
-
-    def one_view(i: int) -> None:
-        t = transmission(phantom, geometry, i)
-        if noisy:
-            rng = np.random.default_rng(streams[i])
-            counts = rng.poisson(n0 * t).astype(float)
-            if geometry.electronic_sd > 0:
-                counts += rng.normal(0.0, geometry.electronic_sd, size=counts.shape)
-            out[i] = -np.log(np.maximum(counts, 0.5) / n0)
-        else:
-            out[i] = -np.log(np.maximum(t, 1e-300))
-
-    with ThreadPoolExecutor(max_workers=workers()) as pool:
-        jobs = pool.map(one_view, range(geometry.n_views))
-        if progress:
-            from tqdm import tqdm
-            jobs = tqdm(jobs, total=geometry.n_views, desc="projections", unit="view",
-                        leave=False)
-        for _ in jobs:
-            pass
-    return Projections(out, geometry, seed if noisy else None)
+    return detect(expected_transmissions(phantom, geometry, progress=progress), geometry,
+                  seed=seed, noise=noise)

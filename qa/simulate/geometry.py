@@ -26,7 +26,8 @@ class Detector:
 
     ``first_centre_xy_mm`` is the ``(x, y)`` centre of pixel ``[row 0, column 0]``;
     columns run along x, rows along y. ``fill_factor`` is the side of the sensitive
-    square aperture as a fraction of the pitch.
+    square aperture as a fraction of the pitch; ``blur_sd_mm`` the SD of a Gaussian
+    spread of each pixel's signal (light spread in a scintillator; 0 for none).
     """
 
     pitch_mm: float
@@ -34,6 +35,7 @@ class Detector:
     rows: int
     first_centre_xy_mm: tuple[float, float]
     fill_factor: float = 1.0
+    blur_sd_mm: float = 0.0
 
     @property
     def shape(self) -> tuple[int, int]:

@@ -63,6 +63,7 @@ def load_geometry(path) -> DbtGeometry:
     corner = det.vector("corner_xy_mm", 2)
     fill = det.number("fill_factor", 1.0, positive=True, maximum=1.0)
     aperture = det.integer("aperture_samples", 2, minimum=1)
+    blur = det.number("blur_sd_mm", 0.0, minimum=0.0)
     det.reject_unknown()
     counts = [s / pitch for s in size]
     if any(abs(c - round(c)) > 1e-6 for c in counts):
@@ -70,7 +71,7 @@ def load_geometry(path) -> DbtGeometry:
                         f"got {size[0]:g} x {size[1]:g} mm")
     columns, rows = (int(round(c)) for c in counts)
     detector = Detector(pitch, columns, rows,
-                        (corner[0] + pitch / 2.0, corner[1] + pitch / 2.0), fill)
+                        (corner[0] + pitch / 2.0, corner[1] + pitch / 2.0), fill, blur)
     noise = doc.sub("noise", {})
     photons = noise.raw("photons_per_pixel", None)
     if photons is not None:

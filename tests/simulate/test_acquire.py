@@ -71,3 +71,28 @@ def test_shipped_geometry_profiles_load():
         for a in g.angles_deg:
             s = g.source_xyz(a)
             assert math.hypot(s[0], s[2] - g.pivot_height_mm) == pytest.approx(g.radius_mm)
+
+
+def test_detector_blur_of_an_edge_and_of_white_noise():
+    from math import erf, pi, sqrt
+
+    from qa.simulate.acquire import detect
+
+    det = Detector(0.1, 80, 60, (0.05, 0.05), blur_sd_mm=0.2)
+    g = _geometry(detector=det, angles_deg=(-5.0, 5.0))
+    # Noiseless: a transmission step from 0.2 to 0.8 across the columns becomes
+    # 0.2 + 0.6 * Phi(x / sigma) (closed form of a Gaussian-blurred step).
+    t = np.full((2, 60, 80), 0.2, dtype=np.float32)
+    t[:, :, 40:] = 0.8
+    p = detect(t, g, noise=False).data[0, 30]
+    x = (np.arange(80) - 39.5) * 0.1
+    want = 0.2 + 0.6 * np.array([0.5 * (1 + erf(v / (0.2 * sqrt(2)))) for v in x])
+    np.testing.assert_allclose(np.exp(-p[20:60]), want[20:60], atol=2e-3)
+    # Noisy: Poisson counts of mean N through a Gaussian of SD s pixels have variance
+    # N / (4 pi s^2) (white noise through a Gaussian filter, continuous approximation,
+    # common practice; accurate to ~1 % for s = 2 pixels), so in the log domain the
+    # variance is 1 / (4 pi s^2 N). 10 % allows for the estimate's spread.
+    g = _geometry(detector=det, angles_deg=(-5.0, 5.0), photons_per_pixel=5000.0)
+    flat = np.full((2, 60, 80), 1.0, dtype=np.float32)
+    p = detect(flat, g, seed=4).data[:, 10:50, 10:70]
+    assert np.var(p) == pytest.approx(1.0 / (4 * pi * 2.0 ** 2 * 5000.0), rel=0.10)
