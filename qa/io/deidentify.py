@@ -161,3 +161,32 @@ def kept_meta(ds: Dataset) -> dict:
     if isinstance(meta.get("scan_arc_deg"), float) and "half_arc_deg" not in meta:
         meta["half_arc_deg"] = meta["scan_arc_deg"] / 2
     return meta
+
+
+#: Header attributes whose values must not appear in a path that leaves the reader.
+_IDENTIFYING = ("PatientName", "PatientID", "OtherPatientIDs", "PatientBirthDate",
+                "AccessionNumber", "OtherPatientNames", "PatientBirthName")
+
+
+def scrub_path(path, ds: Dataset) -> str:
+    """``path`` as text with any patient identifier of ``ds`` replaced by ``[patient]``.
+
+    Scanners and PACS exports often name folders or files after the patient; the source
+    path is shown in logs, JSON and the history, so each identifier found in the header
+    (name components of three or more characters, IDs, birth date, accession number)
+    is cut out of it, case-insensitively.
+    """
+    text = str(path)
+    words: set[str] = set()
+    for keyword in _IDENTIFYING:
+        value = ds.get(keyword)
+        if value is None or value == "":
+            continue
+        values = value if isinstance(value, (list, tuple, MultiValue)) else [value]
+        for v in values:
+            for part in re.split(r"[\^=\s,]+", str(v)):
+                if len(part) >= 3:
+                    words.add(part)
+    for word in sorted(words, key=len, reverse=True):
+        text = re.sub(re.escape(word), "[patient]", text, flags=re.IGNORECASE)
+    return text

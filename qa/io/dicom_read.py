@@ -36,7 +36,7 @@ from pydicom.pixels.utils import get_expected_length
 from ..errors import InputError
 from ..volume import Volume
 from ._files import frozen, one_line
-from .deidentify import kept_meta
+from .deidentify import kept_meta, scrub_path
 from .dicom_geometry import order_planes
 
 _UNDEFINED = 0xFFFFFFFF
@@ -218,7 +218,7 @@ def common_facts(ds: Dataset, path: Path, warned: list) -> dict:
     meta = kept_meta(ds)
     tsyntax = ds.file_meta.TransferSyntaxUID
     meta.update(transfer_syntax_uid=str(tsyntax), transfer_syntax=tsyntax.name,
-                source_file=str(path))
+                source_file=scrub_path(path, ds))
     for keyword, key in (("BitsStored", "bits_stored"),
                          ("PhotometricInterpretation", "photometric_interpretation")):
         if keyword in ds:
