@@ -13,9 +13,9 @@ import sys
 
 from .. import __version__
 from ..errors import InputError
-from . import assess, demo, simulate
+from . import assess, baseline, compare, demo, history_cmd, simulate, trend
 
-SUBCOMMANDS = (demo, assess, simulate)
+SUBCOMMANDS = (demo, assess, simulate, history_cmd, baseline, trend, compare)
 
 
 class _Parser(argparse.ArgumentParser):
