@@ -49,6 +49,18 @@ def baselines_for(history_path, unit_id: str, phantom: str) -> dict[str, float]:
         return {k: v.value for k, v in h.baseline(unit_id, phantom).items()}
 
 
+def history_pages(history_path, result: SessionResult, profile) -> list:
+    """Trend pages for the log when the unit already has sessions in the history."""
+    if history_path is None or not Path(history_path).exists():
+        return []
+    with History.open(history_path) as h:
+        if not h.sessions(unit_id=result.unit_id, phantom=result.phantom.name):
+            return []
+    from .report.trends import trend_pages
+    return trend_pages(history_path, result.unit_id, result.phantom.name, profile,
+                       current=result)
+
+
 def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_path=None,
             extra_pages=()) -> Published:
     """Write the log (and JSON) and record the session; see the module's notes."""

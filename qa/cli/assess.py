@@ -6,7 +6,7 @@ from ..fileio import sha256_of
 from ..io import read_volume
 from ..judge import load_profile
 from ..phantom import load_phantom
-from ..publish import baselines_for, publish
+from ..publish import baselines_for, history_pages, publish
 from ..session import judge_session, safe_unit_id
 from .common import add_output_options, existing_file, history_path, print_summary
 
@@ -53,6 +53,7 @@ def run(args) -> int:
     baselines = baselines_for(hist, unit, phantom.name)
     result = judge_session(volume, phantom, profile, unit_id=unit, baselines=baselines,
                            date=args.date, kind=args.kind)
-    out = publish(result, volume, out_dir=args.out, json_path=args.json, history_path=hist)
+    out = publish(result, volume, out_dir=args.out, json_path=args.json, history_path=hist,
+                  extra_pages=history_pages(hist, result, profile))
     print_summary(result, out.report, out.json)
     return result.exit_code

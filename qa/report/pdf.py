@@ -62,7 +62,7 @@ def format_value(value, uncertainty=None) -> str:
     return text
 
 
-class _NumberedCanvas(rl_canvas.Canvas):
+class NumberedCanvas(rl_canvas.Canvas):
     """Draws 'page N of M' and the running footer once the page count is known."""
 
     footer_left = ""
@@ -158,7 +158,7 @@ def _summary(result: SessionResult, st) -> list:
                      Paragraph(pdf_text(j.limit_text or "—"), st["cell"]),
                      Paragraph(pdf_text(base), st["cell"]), verdict_mark(j.verdict),
                      Paragraph(j.verdict, st["cell"])])
-    t = Table(rows, colWidths=[30 * mm, 27 * mm, 13 * mm, 58 * mm, 24 * mm, 5 * mm, 17 * mm],
+    t = Table(rows, colWidths=[38 * mm, 30 * mm, 12 * mm, 50 * mm, 22 * mm, 5 * mm, 17 * mm],
               repeatRows=1)
     t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "MIDDLE"),
                            ("LINEBELOW", (0, 0), (-1, 0), 0.8, ACCENT),
@@ -204,7 +204,7 @@ def _sections(result: SessionResult, volume, st) -> list:
     return out
 
 
-def _closing(st) -> list:
+def closing_flowables(st) -> list:
     sign = Table([["Checked by (name)", ""], ["Signature", ""], ["Date", ""],
                   ["Remarks", ""]], colWidths=[40 * mm, 134 * mm], rowHeights=[9 * mm] * 3 + [22 * mm])
     sign.setStyle(TableStyle([("FONT", (0, 0), (-1, -1), FONT, 8),
@@ -227,8 +227,8 @@ def render_pdf(result: SessionResult, volume=None, *, extra_pages=()) -> bytes:
                                     f"phantom {result.phantom.name}: {result.overall}",
                             creator=f"Lacuna {result.tool_version}", author="Lacuna")
     story = _header(result, st) + _summary(result, st) + _sections(result, volume, st)
-    story += list(extra_pages) + _closing(st)
-    canvas_class = type("LogCanvas", (_NumberedCanvas,),
+    story += list(extra_pages) + closing_flowables(st)
+    canvas_class = type("LogCanvas", (NumberedCanvas,),
                         {"footer_left": f"Lacuna QA log · {result.unit_id} · {result.date}"})
     doc.build(story, canvasmaker=canvas_class)
     return buf.getvalue()

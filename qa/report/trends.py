@@ -348,7 +348,7 @@ def standalone_pdf(story: list, *, title: str, subject: str, footer: str,
                    heading: str) -> bytes:
     """A document of its own: heading, the log's caution, ``story``, cautions, sign-off."""
     from .. import __version__
-    from .pdf import CAUTION, _closing, _NumberedCanvas
+    from .pdf import CAUTION, NumberedCanvas, closing_flowables
 
     st = styles()
     buf = io.BytesIO()
@@ -357,8 +357,8 @@ def standalone_pdf(story: list, *, title: str, subject: str, footer: str,
                             subject=subject, creator=f"Lacuna {__version__}", author="Lacuna")
     head = [Paragraph(pdf_text(heading), st["title"]),
             Paragraph(pdf_text(CAUTION), st["caution"])]
-    canvas_class = type("StandaloneCanvas", (_NumberedCanvas,), {"footer_left": footer})
-    doc.build(head + list(story) + _closing(st), canvasmaker=canvas_class)
+    canvas_class = type("StandaloneCanvas", (NumberedCanvas,), {"footer_left": footer})
+    doc.build(head + list(story) + closing_flowables(st), canvasmaker=canvas_class)
     return buf.getvalue()
 
 
