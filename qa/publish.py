@@ -81,3 +81,35 @@ def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_p
             path.unlink(missing_ok=True)
         raise
     return Published(report, None if json_path is None else Path(json_path), session_id)
+
+
+def assess_file(source, phantom, profile, *, unit: str | None, out_dir, json_path=None,
+                history_path=None, date: str | None = None, kind: str = "routine",
+                series: str | None = None):
+    """Read one volume file or folder, measure, judge and publish it.
+
+    Returns ``(SessionResult, Published)``. The unit id is ``unit`` or, failing that,
+    the serial number or station name in the header; ``series`` picks one series of a
+    folder holding several.
+    """
+    from .fileio import sha256_of
+    from .io import read_volume
+    from .session import judge_session, safe_unit_id
+
+    source = Path(source)
+    volume = read_volume(source, series=series)
+    volume = volume.with_meta(source_file=str(volume.meta.get("source_file", source)),
+                              checksum=sha256_of(source))
+    if unit:
+        unit_id = safe_unit_id(unit)
+    else:
+        found = next((str(volume.meta[k]) for k in ("serial", "station") if volume.meta.get(k)),
+                     "unknown-unit")
+        unit_id = safe_unit_id(found)
+    result = judge_session(volume, phantom, profile, unit_id=unit_id,
+                           baselines=baselines_for(history_path, unit_id, phantom.name),
+                           date=date, kind=kind)
+    published = publish(result, volume, out_dir=out_dir, json_path=json_path,
+                        history_path=history_path,
+                        extra_pages=history_pages(history_path, result, profile))
+    return result, published

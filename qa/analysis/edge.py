@@ -23,6 +23,10 @@ from ..errors import InputError, NotMeasurable
 MAX_HALF_RANGE_PX = 64
 #: Classes over (-1, 1) bin for the spread of the samples about their bin's mean distance.
 _N_PHASES = 64
+#: Normalisations of the curve: at f = 0 (IEC 62220-1-1) or at its maximum up to Nyquist.
+NORMALISATIONS = ("zero", "peak")
+#: A curve normalised at f = 0 that peaks above this is called edge-enhanced.
+ENHANCED_ABOVE = 1.05
 
 
 @dataclass(frozen=True)
@@ -47,7 +51,9 @@ class EdgeLine:
 class EdgeMTF:
     """The presampled MTF of one edge (cycles/mm), its ESF and windowed LSF. ``*_sd`` are
     standard uncertainties (k = 1), nan when ``n_segments`` is 0; a crossing not reached
-    within the curve's range is nan."""
+    within the curve's range is nan. ``mtf`` is normalised as ``normalise`` says; ``peak``
+    is the largest value up to Nyquist of the curve normalised at f = 0, whatever
+    ``normalise`` (above 1 for an edge-enhanced response), at ``peak_frequency_per_mm``."""
 
     frequency_per_mm: np.ndarray
     mtf: np.ndarray
@@ -66,16 +72,27 @@ class EdgeMTF:
     bin_mm: float
     cnr: float
     n_segments: int
+    normalise: str
+    peak: float
+    peak_sd: float
+    peak_frequency_per_mm: float
+
+    @property
+    def edge_enhanced(self) -> bool:
+        """Whether the curve normalised at f = 0 peaks above :data:`ENHANCED_ABOVE`."""
+        return self.peak > ENHANCED_ABOVE
 
 
-def first_crossing(frequency_per_mm, mtf, level: float) -> float:
-    """Lowest frequency at which ``mtf`` falls below ``level`` (linear interpolation).
+def first_crossing(frequency_per_mm, mtf, level: float, *, start: int = 0) -> float:
+    """Lowest frequency from index ``start`` on (a peak's, for a curve that rises first)
+    at which ``mtf`` falls below ``level`` (linear interpolation).
 
-    Returns ``nan`` when the curve stays at or above ``level`` over its whole range.
+    Returns ``nan`` when the curve stays at or above ``level`` from ``start`` to its end,
+    or is already below it at ``start``.
     """
     f, m = np.asarray(frequency_per_mm, dtype=float), np.asarray(mtf, dtype=float)
-    below = np.nonzero(m < level)[0]
-    if below.size == 0 or below[0] == 0:
+    below = int(start) + np.nonzero(m[int(start):] < level)[0]
+    if below.size == 0 or below[0] == start:
         return float("nan")
     i = below[0]
     return float(f[i - 1] + (m[i - 1] - level) * (f[i] - f[i - 1]) / (m[i - 1] - m[i]))
@@ -84,7 +101,7 @@ def first_crossing(frequency_per_mm, mtf, level: float) -> float:
 def edge_mtf(image, *, pitch_mm, profile_axis: int = 1, bin_fraction: float = 0.25,
              n_segments: int = 16, n_frequencies: int = 129, min_angle_deg: float = 1.0,
              max_angle_deg: float = 15.0, min_cnr: float = 2.0,
-             min_margin_px: float = 6.0) -> EdgeMTF:
+             min_margin_px: float = 6.0, normalise: str = "zero") -> EdgeMTF:
     """Presampled MTF of the slanted edge in a 2D region.
 
     Parameters
@@ -108,6 +125,10 @@ def edge_mtf(image, *, pitch_mm, profile_axis: int = 1, bin_fraction: float = 0.
     min_cnr, min_margin_px : float
         Smallest step across the edge in pixel noise SDs; smallest distance in pixels from
         the fitted edge to the region's border across it (the smallest ESF half-range).
+    normalise : {"zero", "peak"}
+        Divide the curve by its value at f = 0 (IEC 62220-1-1), or by its maximum up to
+        Nyquist (for an edge-enhanced response, such as an FBP reconstruction's along
+        the direction of its filter); MTF50 and MTF10 are then sought after the peak.
 
     Returns
     -------
@@ -146,13 +167,19 @@ def edge_mtf(image, *, pitch_mm, profile_axis: int = 1, bin_fraction: float = 0.
     divides out the transfer of the central difference (``sinc(x) = sin(πx)/(πx)``) and
     of the binning, ``B(f) = sinc(Δf)`` for samples spread evenly over their bins (taken
     from their actual spread). MTF50 and MTF10 are the first crossings of 0.5 and 0.1
-    (linear interpolation).
+    (linear interpolation). ``normalise="peak"`` divides by ``P = max MTF(f)`` over
+    ``0 <= f <= 1/2a`` and seeks the crossings from the peak's frequency on.
 
     Uncertainty: line fit and curve are repeated without each of ``K`` contiguous
     segments of the edge in turn (keeping noise correlated along the edge together); the
     delete-one jackknife gives ``u²(f) = (K-1)/K Σ (MTF_i(f) - mean MTF(f))²``. A crossing
     has ``u(f_c) = u(MTF(f_c)) / |slope|``, the slope of a line fitted to the curve over
-    ``f_c ± 25 %``: steadier than a jackknife of the crossing, which noise makes jump.
+    ``f_c ± 25 %`` (after the peak): steadier than a jackknife of the crossing, which
+    noise makes jump. Normalised at the peak, each replicate is divided by its own
+    maximum, so ``u(MTF(f_c))`` carries the peak's uncertainty and its correlation with
+    the curve, to first order ``u²(M/P) = (M/P)² (u²(M)/M² + u²(P)/P² - 2 u(M,P)/(M P))``
+    (the peak's frequency moving between replicates does not matter: the curve is flat
+    there).
     """
     if not 0.0 < bin_fraction <= 0.25:
         raise InputError(f"bin_fraction must be in (0, 0.25] (a quarter pixel or finer), "
@@ -160,6 +187,9 @@ def edge_mtf(image, *, pitch_mm, profile_axis: int = 1, bin_fraction: float = 0.
     if n_frequencies < 8:
         raise InputError(f"n_frequencies must be at least 8, got {n_frequencies}",
                          field="n_frequencies")
+    if normalise not in NORMALISATIONS:
+        raise InputError(f"normalise must be 'zero' or 'peak', got {normalise!r}",
+                         field="normalise")
     img, (p_along, p_across) = _oriented(image, pitch_mm, profile_axis)
     line, centroids, cnr = _find(img, p_along, p_across, min_angle_deg, max_angle_deg,
                                  min_cnr)
@@ -174,9 +204,12 @@ def edge_mtf(image, *, pitch_mm, profile_axis: int = 1, bin_fraction: float = 0.
     esf_x, esf, phases = _binned_esf(img, rows, line, p_along, p_across, half_range_mm,
                                      bin_mm)
     dft = _dft_matrix(freq, esf_x[1:-1], bin_mm, phases)
-    mtf, f50, f10, lsf_x, lsf = _spectrum(esf_x, esf, dft, freq)
+    n_nyq = int(np.sum(freq <= 0.5 / p_across * (1 + 1e-9)))
+    mtf0, lsf_x, lsf = _spectrum(esf_x, esf, dft)
+    mtf, start, peak = _normalised(mtf0, n_nyq, normalise)
+    f50, f10 = (first_crossing(freq, mtf, v, start=start) for v in (0.5, 0.1))
 
-    jack, angles = [], []
+    jack, peaks, angles = [], [], []
     if n_segments >= 2:
         for seg in np.array_split(rows, int(n_segments)):
             keep = np.setdiff1d(rows, seg)
@@ -184,16 +217,26 @@ def edge_mtf(image, *, pitch_mm, profile_axis: int = 1, bin_fraction: float = 0.
             seg_line = _fit_line(ok * p_along, centroids[ok], line.polarity)
             x_i, esf_i, _ = _binned_esf(img, keep, seg_line, p_along, p_across,
                                         half_range_mm, bin_mm)
-            jack.append(_spectrum(x_i, esf_i, dft, freq)[0])
+            rep_i, _, peak_i = _normalised(_spectrum(x_i, esf_i, dft)[0], n_nyq, normalise)
+            jack.append(rep_i)
+            peaks.append(peak_i)
             angles.append(seg_line.angle_deg)
     mtf_sd = _jackknife_sd(jack, freq.shape)
     return EdgeMTF(
         frequency_per_mm=freq, mtf=mtf, mtf_sd=mtf_sd,
-        mtf50_per_mm=f50, mtf50_sd=_crossing_sd(freq, mtf, mtf_sd, f50),
-        mtf10_per_mm=f10, mtf10_sd=_crossing_sd(freq, mtf, mtf_sd, f10),
+        mtf50_per_mm=f50, mtf50_sd=_crossing_sd(freq, mtf, mtf_sd, f50, start),
+        mtf10_per_mm=f10, mtf10_sd=_crossing_sd(freq, mtf, mtf_sd, f10, start),
         angle_deg=line.angle_deg, angle_sd_deg=float(_jackknife_sd(angles, ())),
         line=line, distance_mm=esf_x, esf=esf, lsf_distance_mm=lsf_x, lsf=lsf,
-        bin_mm=bin_mm, cnr=cnr, n_segments=len(jack))
+        bin_mm=bin_mm, cnr=cnr, n_segments=len(jack), normalise=normalise, peak=peak,
+        peak_sd=float(_jackknife_sd(peaks, ())),
+        peak_frequency_per_mm=float(freq[np.argmax(mtf0[:n_nyq])]))
+
+
+def _normalised(mtf, n_nyq, normalise):
+    """Curve as ``normalise`` says, index to seek crossings from, peak up to ``n_nyq``."""
+    i = int(np.argmax(mtf[:n_nyq]))
+    return (mtf / mtf[i], i, float(mtf[i])) if normalise == "peak" else (mtf, 0, float(mtf[i]))
 
 
 def _jackknife_sd(replicates, shape):
@@ -205,17 +248,19 @@ def _jackknife_sd(replicates, shape):
     return np.sqrt((k - 1) / k * np.sum((v - v.mean(axis=0)) ** 2, axis=0))
 
 
-def _crossing_sd(freq, mtf, mtf_sd, f_c, band=0.25):
+def _crossing_sd(freq, mtf, mtf_sd, f_c, start=0, band=0.25):
     """Uncertainty of a crossing frequency: ``u(MTF(f_c)) / |dMTF/df (f_c)|``.
 
     The slope is that of a straight line fitted to the curve over ``f_c (1 ± band)`` (at
-    least three points each side): steadier than the slope between two noisy grid points.
+    least three points each side, none before index ``start``, the peak): steadier than
+    the slope between two noisy grid points.
     """
     if not (np.isfinite(f_c) and np.all(np.isfinite(mtf_sd))):
         return float("nan")
     i = int(np.searchsorted(freq, f_c))
     sel = (freq >= f_c * (1 - band)) & (freq <= f_c * (1 + band))
     sel[max(i - 3, 0):i + 3] = True
+    sel[:start] = False
     slope = np.polyfit(freq[sel], mtf[sel], 1)[0]
     if not slope < 0:
         return float("nan")
@@ -375,8 +420,9 @@ def _binned_esf(img, rows, line, p_along, p_across, half_range_mm, bin_mm, min_f
     return centres, esf, phases
 
 
-def _spectrum(x, esf, dft, freq):
-    """Windowed central-difference LSF of a binned ESF and its normalised spectrum."""
+def _spectrum(x, esf, dft):
+    """Spectrum of the windowed central-difference LSF of a binned ESF, normalised at
+    f = 0; the LSF's distances and values."""
     bin_mm = x[1] - x[0]
     lsf = (esf[2:] - esf[:-2]) / (2.0 * bin_mm)
     xl = x[1:-1]
@@ -387,8 +433,7 @@ def _spectrum(x, esf, dft, freq):
     if not area > 0:
         raise NotMeasurable("no usable edge: the windowed LSF has no positive area")
     # einsum, not @: a BLAS call this small only costs thread start-up on a busy machine
-    mtf = np.abs(np.einsum("ij,j->i", dft, wl)) / area
-    return (mtf, first_crossing(freq, mtf, 0.5), first_crossing(freq, mtf, 0.1), xl, wl)
+    return np.abs(np.einsum("ij,j->i", dft, wl)) / area, xl, wl
 
 
 def _dft_matrix(freq, x_mm, bin_mm, phases):

@@ -13,9 +13,9 @@ import sys
 
 from .. import __version__
 from ..errors import InputError
-from . import assess, baseline, compare, demo, history_cmd, simulate, trend
+from . import assess, baseline, batch, compare, demo, history_cmd, simulate, trend
 
-SUBCOMMANDS = (demo, assess, simulate, history_cmd, baseline, trend, compare)
+SUBCOMMANDS = (demo, assess, batch, simulate, history_cmd, baseline, trend, compare)
 
 
 class _Parser(argparse.ArgumentParser):

@@ -2,12 +2,9 @@
 
 from __future__ import annotations
 
-from ..fileio import sha256_of
-from ..io import read_volume
 from ..judge import load_profile
 from ..phantom import load_phantom
-from ..publish import baselines_for, history_pages, publish
-from ..session import judge_session, safe_unit_id
+from ..publish import assess_file
 from .common import add_output_options, existing_file, history_path, print_summary
 
 
@@ -31,29 +28,13 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
-def unit_from(volume, explicit: str | None) -> str:
-    if explicit:
-        return safe_unit_id(explicit)
-    for key in ("serial", "station"):
-        if volume.meta.get(key):
-            return safe_unit_id(str(volume.meta[key]))
-    return "unknown-unit"
-
-
 def run(args) -> int:
     phantom = load_phantom(existing_file(args.phantom, "phantom definition"))
     profile = load_profile(existing_file(args.limits, "limit profile"))
     profile.check_applies(phantom=phantom.name)
     source = existing_file(args.volume, "volume")
-    volume = read_volume(source)
-    volume = volume.with_meta(source_file=str(volume.meta.get("source_file", source)),
-                              checksum=sha256_of(source))
-    unit = unit_from(volume, args.unit)
-    hist = history_path(args)
-    baselines = baselines_for(hist, unit, phantom.name)
-    result = judge_session(volume, phantom, profile, unit_id=unit, baselines=baselines,
-                           date=args.date, kind=args.kind)
-    out = publish(result, volume, out_dir=args.out, json_path=args.json, history_path=hist,
-                  extra_pages=history_pages(hist, result, profile))
+    result, out = assess_file(source, phantom, profile, unit=args.unit, out_dir=args.out,
+                              json_path=args.json, history_path=history_path(args),
+                              date=args.date, kind=args.kind)
     print_summary(result, out.report, out.json)
     return result.exit_code

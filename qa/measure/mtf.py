@@ -9,7 +9,12 @@ middle of each edge, and :func:`qa.analysis.edge.edge_mtf` measures it.
 Options (phantom definition, ``analysis: mtf:``): ``roi_across_mm`` (default the smaller
 of 6 mm and 3/4 of the plate's side), ``roi_along_mm`` (the smaller of 20 mm and 60 % of
 the side, so the region stays well inside the corners), ``bin_fraction`` (1/4),
-``focus_search_mm`` (3 mm either side of the nominal height) and ``n_segments`` (16).
+``focus_search_mm`` (3 mm either side of the nominal height), ``n_segments`` (16) and
+``normalise``: ``zero`` (default, at f = 0 as IEC 62220-1-1 says) or ``peak`` (at the
+curve's maximum, MTF50 and MTF10 sought after it; for the edge-enhanced in-plane response
+of a filtered backprojection, whose curve normalised at f = 0 rises well above 1).
+Whatever the normalisation, a curve normalised at f = 0 that peaks above 1.05 is
+reported in each figure's note and in the plot data.
 
 References
 ----------
@@ -22,18 +27,18 @@ from __future__ import annotations
 from typing import Mapping
 
 import numpy as np
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
 
-from ..analysis.edge import edge_mtf
+from ..analysis.edge import ENHANCED_ABOVE, NORMALISATIONS, edge_mtf
 from ..errors import InputError, NotMeasurable
+from ..report.figures import PALETTE, new_figure
 from .base import FamilyResult, Measurement, MetricFamily, MetricSpec, Roi, register
 
 FAMILY = "mtf"
 UNIT = "lp/mm"
 DIRECTIONS = ("x", "y")
 _DEFAULTS = {"roi_across_mm": None, "roi_along_mm": None, "bin_fraction": 0.25,
-             "focus_search_mm": 3.0, "n_segments": 16}
+             "focus_search_mm": 3.0, "n_segments": 16, "normalise": "zero"}
+_NORMALISED_AT = {"zero": "f = 0", "peak": "the peak"}
 
 
 def measure(volume, layout, settings: Mapping | None = None) -> FamilyResult:
@@ -58,7 +63,8 @@ def measure(volume, layout, settings: Mapping | None = None) -> FamilyResult:
     -----
     In-focus plane: every plane within ``focus_search_mm`` of the plate's nominal height
     is scored by the sum of the MTF50 of the plate's edges that give the MTF along x (0
-    where one cannot be measured; see :func:`_focus`); the best plane is used.
+    where one cannot be measured; see :func:`_focus`); the best plane is used. The curves
+    are normalised as the ``normalise`` option says, in the focus search too.
 
     Per direction, with ``n`` edges (of every plate) giving values ``v_i`` with
     uncertainties ``u_i``, the figure is ``mean v`` and its uncertainty the larger of
@@ -110,39 +116,43 @@ def plot(result: FamilyResult):
     curves = {d: c for d, c in curves.items() if c}
     if not curves:
         return None
-    fig = Figure(figsize=(6.4, 4.0))
-    FigureCanvasAgg(fig)
-    ax = fig.add_subplot(1, 1, 1)
-    styles = {"x": ("-", "o", "0.1"), "y": ("--", "s", "0.45")}
+    fig, ax = new_figure(5.6, 3.4)
+    styles = {"x": ("-", "o", PALETTE[0]), "y": ("--", "s", PALETTE[1])}
     marks = [c[k] for c in curves.values() for k in ("mtf50", "mtf10") if c[k] is not None]
     f_top = max([1.25 * c["nyquist_per_mm"] for c in curves.values()] + [1.05 * v for v in marks])
     for d, c in curves.items():
-        line, marker, shade = styles[d]
+        line, marker, colour = styles[d]
         f, m = c["frequency_per_mm"], c["mtf"]
         keep = f <= f_top
-        ax.plot(f[keep], m[keep], line, color=shade, lw=1.6, label=f"along {d}")
+        ax.plot(f[keep], m[keep], line, color=colour, lw=1.4, label=f"along {d}")
         for level, key in ((0.5, "mtf50"), (0.1, "mtf10")):
             if c[key] is not None:     # the reported figure (mean over edges) and its ±u
                 ax.errorbar([c[key]], [level], xerr=[c[f"{key}_u"] or 0.0], fmt=marker,
-                            color=shade, mfc="white", ms=6, capsize=3, lw=1.0)
+                            color=colour, mfc="white", ms=5, capsize=3, lw=1.0)
+                left = c[key] > 0.8 * f_top        # near the right end: label to the left
                 ax.annotate(f"{key.upper()} {d} {c[key]:.2f}", (c[key], level),
-                            textcoords="offset points", xytext=(6, 4 if d == "x" else -12),
-                            fontsize=8, color=shade)
+                            textcoords="offset points", ha="right" if left else "left",
+                            xytext=(-6 if left else 6, 4 if d == "x" else -12),
+                            fontsize=7, color=colour)
     for nyq in sorted({round(c["nyquist_per_mm"], 6) for c in curves.values()}):
-        ax.axvline(nyq, color="0.6", lw=0.8, ls=":")
-        ax.text(nyq, 0.02, "Nyquist ", fontsize=7, color="0.4", ha="right")
+        ax.axvline(nyq, color=PALETTE[4], lw=0.8, ls=":")
+        ax.text(nyq, 0.02, "Nyquist ", fontsize=6, color=PALETTE[4], ha="right")
+    enhanced = [f"edge-enhanced {d}: zero-normalised MTF peaks at {c['zero_peak']:.2f} at "
+                f"{c['zero_peak_frequency_per_mm']:.1f} lp/mm" for d, c in curves.items()
+                if c["edge_enhanced"]]
+    if enhanced:
+        ax.text(0.98, 0.75, "\n".join(enhanced), transform=ax.transAxes, ha="right",
+                va="top", fontsize=6, color=PALETTE[4])
     ax.axhline(0.0, color="0.8", lw=0.6)
     ax.set_ylim(-0.02, max(1.1, 1.05 * max(float(np.max(c["mtf"])) for c in curves.values())))
     ax.set_xlim(left=0.0)
     ax.set_xlabel("spatial frequency (lp/mm)")
-    ax.set_ylabel("presampled MTF")
+    at = {_NORMALISED_AT[c["normalise"]] for c in curves.values()}
+    ax.set_ylabel(f"presampled MTF (normalised at {' / '.join(sorted(at))})")
     z = result.plot_data.get("focus_z_mm") or {}
     ax.set_title("In-plane MTF" + (f", plane z = {min(z.values()):.1f} mm" if len(z) == 1
-                                   else ""), fontsize=10, loc="left")
-    for side in ("top", "right"):
-        ax.spines[side].set_visible(False)
-    ax.legend(frameon=False, fontsize=8, loc="upper right")
-    fig.tight_layout()
+                                   else ""), fontsize=9, loc="left")
+    ax.legend(frameon=False, fontsize=7, loc="upper right")
     return fig
 
 
@@ -161,6 +171,12 @@ def _options(layout) -> dict:
         if key not in _DEFAULTS:
             raise InputError(f"unknown option '{key}'; expected one of "
                              f"{', '.join(sorted(_DEFAULTS))}", **where)
+        if key == "normalise":
+            if value not in NORMALISATIONS:
+                raise InputError(f"expected one of {', '.join(NORMALISATIONS)}, got "
+                                 f"{value!r}", **where)
+            opts[key] = value
+            continue
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
             raise InputError(f"expected a positive number, got {value!r}", **where)
         if key == "n_segments" and (value != int(value) or not 2 <= value <= 64):
@@ -215,7 +231,8 @@ def _region(volume, edge, z_mm):
 def _measure_edge(volume, edge, z_mm, opts, *, n_segments):
     region = _region(volume, edge, z_mm)
     return edge_mtf(region, pitch_mm=volume.spacing_mm[1:], bin_fraction=opts["bin_fraction"],
-                    profile_axis=1 if edge["direction"] == "x" else 0, n_segments=n_segments)
+                    profile_axis=1 if edge["direction"] == "x" else 0, n_segments=n_segments,
+                    normalise=opts["normalise"])
 
 
 def _focus(volume, edges, opts):
@@ -261,13 +278,32 @@ def _combine(values, uncertainties):
     return float(v.mean()), (float(max(candidates)) if candidates else None)
 
 
+def _peak_data(results, pitch_mm) -> dict:
+    """Peak of the mean over edges of the curves normalised at f = 0, up to Nyquist."""
+    if not results:
+        return {}
+    f = results[0].frequency_per_mm
+    zero = np.mean([r.mtf * (r.peak if r.normalise == "peak" else 1.0) for r in results],
+                   axis=0)
+    nyquist = 0.5 / pitch_mm
+    i = int(np.argmax(np.where(f <= nyquist * (1 + 1e-9), zero, -np.inf)))
+    return {"normalise": results[0].normalise, "nyquist_per_mm": nyquist,
+            "zero_peak": float(zero[i]), "zero_peak_frequency_per_mm": float(f[i]),
+            "edge_enhanced": bool(zero[i] > ENHANCED_ABOVE),
+            "edge_zero_peak": [r.peak for r in results],
+            "edge_zero_peak_sd": [r.peak_sd for r in results]}
+
+
 def _result(per_dir, reasons, rois, focus, spacing_mm) -> FamilyResult:
     measurements, plot_data = [], {"focus_z_mm": {k: f["z_mm"] for k, f in focus.items()},
                                    "focus_search": focus}
     for d in DIRECTIONS:
         found = per_dir.get(d) or []
         why = "; ".join(reasons.get(d) or ["no edge of this direction was measured"])
-        curve = {}
+        curve = _peak_data([r for _, r in found], spacing_mm[2 if d == "x" else 1])
+        extra = (f"; edge-enhanced: zero-normalised MTF peaks at {curve['zero_peak']:.2f} at "
+                 f"{curve['zero_peak_frequency_per_mm']:.1f} lp/mm; normalised at "
+                 f"{_NORMALISED_AT[curve['normalise']]}" if curve.get("edge_enhanced") else "")
         for level in (50, 10):
             name = f"mtf{level}_{d}"
             pairs = [(getattr(r, f"mtf{level}_per_mm"), getattr(r, f"mtf{level}_sd"))
@@ -280,26 +316,29 @@ def _result(per_dir, reasons, rois, focus, spacing_mm) -> FamilyResult:
                                   f"{level / 100:.1f} over the curve's range")
                 note = f"mean of {len(pairs)} edge(s)" + (f"; not used: {'; '.join(unused)}"
                                                           if unused else "")
-                measurements.append(Measurement(name, value, UNIT, unc, note))
+                measurements.append(Measurement(name, value, UNIT, unc, note + extra))
                 curve[f"mtf{level}"], curve[f"mtf{level}_u"] = value, unc
             else:
                 if found:
                     why = (f"the MTF stays above {level / 100:.1f} up to "
-                           f"{found[0][1].frequency_per_mm[-1]:.1f} lp/mm")
-                measurements.append(Measurement.missing(name, UNIT, why))
+                           f"{found[0][1].frequency_per_mm[-1]:.1f} lp/mm"
+                           + (" after its peak" if curve["normalise"] == "peak" else ""))
+                measurements.append(Measurement.missing(name, UNIT, why + extra))
                 curve[f"mtf{level}"], curve[f"mtf{level}_u"] = None, None
         if found:
             res = [r for _, r in found]
             sd = np.sqrt(np.sum([r.mtf_sd ** 2 for r in res], axis=0)) / len(res)
             curve.update(frequency_per_mm=res[0].frequency_per_mm,
                          mtf=np.mean([r.mtf for r in res], axis=0), mtf_sd=sd,
-                         nyquist_per_mm=0.5 / spacing_mm[2 if d == "x" else 1],
                          edges=[label for label, _ in found],
                          edge_angle_deg=[r.angle_deg for r in res])
             plot_data[d] = curve
     parts = [f"{m.name} {m.value:.2f} {m.unit}" for m in measurements
              if m.measured and m.name.startswith("mtf50")]
     summary = ", ".join(parts) if parts else "in-plane MTF not measured"
+    if parts and any(c.get("normalise") == "peak" for c in plot_data.values()
+                     if isinstance(c, dict)):
+        summary += " (normalised at the peak)"
     if focus:
         summary += "; in-focus plane z = " + ", ".join(f"{f['z_mm']:.1f} mm"
                                                       for f in focus.values())

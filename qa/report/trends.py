@@ -175,7 +175,7 @@ def trend_figure(trend: MetricTrend, *, width_in: float = 6.8, height_in: float 
 def figure_image(fig, width_mm: float = _WIDTH_MM) -> Image:
     """A matplotlib Figure as a reportlab Image of the given width."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=170)
+    fig.savefig(buf, format="png", dpi=130)
     w_in, h_in = fig.get_size_inches()
     buf.seek(0)
     return Image(buf, width=width_mm * mm, height=width_mm * mm * h_in / w_in)
@@ -286,10 +286,25 @@ def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
         out += [Spacer(1, 2 * mm), Paragraph(f"Latest flagged points (up to {most_flagged})",
                                              st["body"]),
                 data_table(flagged, (28, 16, 44, 40, 46), st)]
-    for t in trends.metrics:
+    charted = [t for t in trends.metrics if _charted(t)]
+    if len(charted) < len(trends.metrics):
+        out.append(Paragraph("Charts follow for the headline figures and for every metric "
+                             "whose latest point is outside a warning or action limit; the "
+                             "table above lists them all.", st["small"]))
+    for t in charted:
         out.append(Spacer(1, 2 * mm))
         out.append(figure_image(trend_figure(t)))
     return out
+
+
+#: Figures always charted on trend pages (the JSON contract's headline names).
+HEADLINE = ("mtf50_x", "mtf50_y", "asf_fwhm", "streak_half_angle", "noise_sd")
+
+
+def _charted(trend: MetricTrend) -> bool:
+    last = trend.latest
+    outside = last is not None and (OUTSIDE_ACTION in last.flags or OUTSIDE_WARNING in last.flags)
+    return trend.metric in HEADLINE or outside
 
 
 def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, current=None,

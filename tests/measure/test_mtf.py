@@ -8,17 +8,21 @@ by point-sampling each pixel 6 x 6 times; that turns the aperture term into
 sin(pi a f) / (6 sin(pi a f / 6)), within 1e-3 of sinc(a f) up to the MTF50 used.
 """
 
+import re
+
 import numpy as np
 import pytest
+from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
 from scipy.ndimage import gaussian_filter1d
-from scipy.optimize import brentq
+from scipy.optimize import brentq, minimize_scalar
 from scipy.special import ndtr
 
 from qa.errors import InputError
 from qa.locate.layout import Layout, Placed
 from qa.measure import families, find_spec, mtf
 from qa.phantom.model import Phantom, PhantomObject, Shape
+from qa.report.figures import PALETTE
 from qa.volume import Volume
 
 PITCH_MM = 0.1
@@ -28,11 +32,15 @@ FOCUS_PLANE = 3         # plane index (z = 3 mm); the plate's nominal height is 
 PLATE = Shape("box", (8.0, 8.0, 2.0), (4.0, 4.0, 0.5), (0.0, 0.0, 4.0))
 
 
-def _plate_plane(sigma_mm, contrast, centre_xy=(8.03, 7.96), half_mm=4.0, angle_deg=4.0, ss=6):
+def _plate_plane(sigma_mm, contrast, centre_xy=(8.03, 7.96), half_mm=4.0, angle_deg=4.0, ss=6,
+                 boost_mm2=0.0):
     """Mean over each pixel (ss x ss points) of a Gaussian-blurred square turned about z.
 
     In the square's own frame (u, v) the blurred indicator is separable:
-    [Phi((h - u)/s) - Phi((-h - u)/s)] [Phi((h - v)/s) - Phi((-h - v)/s)].
+    [E(h - u) - E(-h - u)] [E(h - v) - E(-h - v)] with E(t) = Phi(t/s) - c g'(t), the
+    integral of the LSF g - c g'' (g the Gaussian density of SD s, c = boost / (4 pi^2)),
+    whose transfer is (1 + boost f^2) exp(-2 pi^2 s^2 f^2): for boost > 0 an edge-enhanced
+    response (the Fourier transform of g'' is -(2 pi f)^2 G).
     """
     t = ((np.arange(N_PX * ss) + 0.5) / ss - 0.5) * PITCH_MM
     x, y = np.meshgrid(t, t)                       # arrays [y, x]
@@ -40,8 +48,12 @@ def _plate_plane(sigma_mm, contrast, centre_xy=(8.03, 7.96), half_mm=4.0, angle_
     dx, dy = x - centre_xy[0], y - centre_xy[1]
     u, v = np.cos(th) * dx + np.sin(th) * dy, -np.sin(th) * dx + np.cos(th) * dy
 
+    def esf(t):      # - c g'(t) = c t / s^2 g(t)
+        g = np.exp(-0.5 * (t / sigma_mm) ** 2) / (sigma_mm * np.sqrt(2 * np.pi))
+        return ndtr(t / sigma_mm) + boost_mm2 / (4 * np.pi ** 2) * t / sigma_mm ** 2 * g
+
     def box(w):
-        return ndtr((half_mm - w) / sigma_mm) - ndtr((-half_mm - w) / sigma_mm)
+        return esf(half_mm - w) - esf(-half_mm - w)
 
     return contrast * (box(u) * box(v)).reshape(N_PX, ss, N_PX, ss).mean(axis=(1, 3))
 
@@ -166,6 +178,8 @@ def test_options_from_the_phantom_definition(volume):
     ({"bin_fraction": 0.5}, "analysis.mtf.bin_fraction"),
     ({"n_segments": 2.5}, "analysis.mtf.n_segments"),
     ({"roi_across_mm": "wide"}, "analysis.mtf.roi_across_mm"),
+    ({"normalise": "max"}, "analysis.mtf.normalise"),
+    ({"normalise": 1}, "analysis.mtf.normalise"),
 ])
 def test_bad_options_are_refused(volume, options, field):
     with pytest.raises(InputError, match="phantoms/test.yaml") as info:
@@ -180,3 +194,117 @@ def test_plot_draws_both_curves(result):
     labels = [line.get_label() for line in ax.get_lines()]
     assert "along x" in labels and "along y" in labels
     assert sum(t.get_text().startswith("MTF50") for t in ax.texts) == 2
+    assert sum(t.get_text().startswith("MTF10") for t in ax.texts) == 2
+    assert ax.get_ylabel() == "presampled MTF (normalised at f = 0)"
+    # House style (qa.report.figures): constrained layout, the palette's colours.
+    assert fig.get_layout_engine().__class__.__name__ == "ConstrainedLayoutEngine"
+    colours = {to_hex(line.get_color()) for line in ax.get_lines() if line.get_label()
+               in ("along x", "along y")}
+    assert colours == {PALETTE[0], PALETTE[1]}
+    assert any(line.get_xdata()[0] == pytest.approx(5.0) for line in ax.get_lines()
+               if line.get_linestyle() == ":")                         # Nyquist, 5 lp/mm
+    assert not any("edge-enhanced" in t.get_text() for t in ax.texts)
+
+
+# --- normalisation of an edge-enhanced response -----------------------------------------
+
+ENH_SIGMA_PX, ENH_BOOST_PX2 = 1.5, 200.0   # transfer peaks near 2.0 at about 1.3 lp/mm
+
+
+def _enhanced(f_per_mm):
+    """Closed form of the enhanced plate's presampled MTF (see _plate_plane) along the
+    normal of an edge at 4 deg: the square pixel projected on it is the convolution of
+    rectangles of widths a cos 4 and a sin 4 (the 6 x 6 point sampling is within 1e-3 of
+    it, module docstring)."""
+    f, t = np.asarray(f_per_mm) * PITCH_MM, np.radians(4.0)
+    return ((1 + ENH_BOOST_PX2 * f ** 2) * np.exp(-2 * np.pi ** 2 * ENH_SIGMA_PX ** 2 * f ** 2)
+            * np.abs(np.sinc(f * np.cos(t)) * np.sinc(f * np.sin(t))))
+
+
+def _enhanced_truth():
+    best = minimize_scalar(lambda f: -_enhanced(f), bounds=(0.1, 4.0), method="bounded",
+                           options={"xatol": 1e-8})
+    f_pk, peak = best.x, float(_enhanced(best.x))
+    after = {level: brentq(lambda f: _enhanced(f) / peak - level / 100, f_pk, 5.0)
+             for level in (50, 10)}
+    zero = {level: brentq(lambda f: _enhanced(f) - level / 100, f_pk, 5.0) for level in (50, 10)}
+    return peak, f_pk, after, zero
+
+
+@pytest.fixture(scope="module")
+def enhanced_volume():
+    # One plane at the plate's nominal height, so the focus search has one plane to take.
+    plane = 10.0 + 100.0 * _plate_plane(ENH_SIGMA_PX * PITCH_MM, 1.0,
+                                        boost_mm2=ENH_BOOST_PX2 * PITCH_MM ** 2)
+    return Volume(plane[None], (1.0, PITCH_MM, PITCH_MM), (2.0, 0.0, 0.0))
+
+
+@pytest.fixture(scope="module")
+def enhanced(enhanced_volume):
+    return {mode: mtf.measure(enhanced_volume, _layout(analysis=options), None)
+            for mode, options in (("zero", None), ("peak", {"mtf": {"normalise": "peak"}}))}
+
+
+@pytest.mark.parametrize("direction", ["x", "y"])
+def test_peak_normalisation_gives_closed_form_crossings_after_the_peak(enhanced, direction):
+    peak, f_pk, after, _ = _enhanced_truth()
+    got = {m.name: m for m in enhanced["peak"].measurements}
+    for level in (50, 10):
+        m = got[f"mtf{level}_{direction}"]
+        # 3 % (brief), as for the f = 0 normalisation.
+        assert m.value == pytest.approx(after[level], rel=0.03)
+        assert m.uncertainty is not None and 0 <= m.uncertainty < 0.03 * after[level]
+        # The note names the peak of the curve normalised at f = 0 (2 decimals, within
+        # 1 % of the closed form; its frequency to the 0.1 lp/mm printed).
+        found = re.search(r"edge-enhanced: zero-normalised MTF peaks at ([0-9.]+) at "
+                          r"([0-9.]+) lp/mm; normalised at the peak$", m.note)
+        assert found, m.note
+        assert float(found[1]) == pytest.approx(peak, rel=0.01)
+        assert float(found[2]) == pytest.approx(f_pk, abs=0.1)
+    curve = enhanced["peak"].plot_data[direction]
+    assert curve["normalise"] == "peak" and curve["edge_enhanced"]
+    assert curve["zero_peak"] == pytest.approx(peak, rel=0.01)
+    # One grid step of the curve is 1/128 of 1/a = 0.078 lp/mm.
+    assert curve["zero_peak_frequency_per_mm"] == pytest.approx(f_pk, abs=0.08)
+    f = curve["frequency_per_mm"]
+    upto = f <= 5.0
+    assert np.max(curve["mtf"][upto]) == pytest.approx(1.0, abs=1e-9)
+    # Tolerance 0.02 of the brief for the curve.
+    assert np.max(np.abs(curve["mtf"][upto] - _enhanced(f[upto]) / peak)) < 0.02
+
+
+def test_zero_normalisation_keeps_the_crossings_and_flags_the_enhancement(enhanced):
+    peak, _, _, zero = _enhanced_truth()
+    for m in enhanced["zero"].measurements:
+        level = int(m.name[3:5])
+        assert m.value == pytest.approx(zero[level], rel=0.03)      # 3 % (brief)
+        assert m.note.startswith("mean of 2 edge(s); edge-enhanced: zero-normalised MTF "
+                                 f"peaks at {peak:.2f} at ")
+        assert m.note.endswith("; normalised at f = 0")
+    for d in ("x", "y"):
+        curve = enhanced["zero"].plot_data[d]
+        assert curve["normalise"] == "zero" and curve["mtf"][0] == pytest.approx(1.0)
+        assert curve["zero_peak"] == pytest.approx(peak, rel=0.01)   # as above
+    assert "normalised at the peak" not in enhanced["zero"].summary
+    assert "(normalised at the peak)" in enhanced["peak"].summary
+
+
+def test_plain_edges_are_not_flagged(result):
+    # A Gaussian blur times a sinc falls from f = 0 on (closed form): peak 1 at f = 0.
+    assert not any("edge-enhanced" in m.note for m in result.measurements)
+    for d in ("x", "y"):
+        curve = result.plot_data[d]
+        assert curve["zero_peak"] == pytest.approx(1.0) and not curve["edge_enhanced"]
+        assert curve["zero_peak_frequency_per_mm"] == 0.0
+
+
+def test_plot_names_the_normalisation_and_the_enhancement(enhanced):
+    ax = mtf.plot(enhanced["peak"]).axes[0]
+    assert ax.get_ylabel() == "presampled MTF (normalised at the peak)"
+    texts = [t.get_text() for t in ax.texts]
+    assert sum(t.startswith("MTF50") for t in texts) == 2
+    assert any(t.startswith("edge-enhanced x: zero-normalised MTF peaks at 2.0") for t in texts)
+    ax = mtf.plot(enhanced["zero"]).axes[0]
+    assert ax.get_ylabel() == "presampled MTF (normalised at f = 0)"
+    # Normalised at f = 0 the curve rises to about 2: the axis shows all of it.
+    assert ax.get_ylim()[1] >= 2.0
