@@ -14,7 +14,11 @@ class Pose:
     """The phantom's pose in the volume: in-plane shift, rotation about z, mirroring.
 
     ``residual_mm`` is the RMS distance between the found and the posed nominal
-    positions of the objects used to fit the pose (0 when nothing was fitted).
+    positions of the objects used to fit the pose (0 when nothing was fitted; NaN when
+    a fit was tried and failed, ``note`` then says why and the nominal pose is used).
+    ``shift_z_mm`` is the height offset applied to every object's nominal height (the
+    beads' mean height error when it is significant, else 0). The convention (rotation
+    about the phantom's origin, mirroring reverses x) is in :mod:`qa.locate.pose`.
     """
 
     shift_xy_mm: tuple[float, float] = (0.0, 0.0)
@@ -22,6 +26,8 @@ class Pose:
     mirrored: bool = False
     residual_mm: float = 0.0
     fitted_from: tuple[str, ...] = ()
+    shift_z_mm: float = 0.0
+    note: str = ""
 
 
 @dataclass(frozen=True)
