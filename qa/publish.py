@@ -58,7 +58,7 @@ def history_pages(history_path, result: SessionResult, profile) -> list:
             return []
     from .report.trends import trend_pages
     return trend_pages(history_path, result.unit_id, result.phantom.name, profile,
-                       current=result)
+                       current=result, charts="headline")
 
 
 def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_path=None,

@@ -23,10 +23,11 @@ UNIT = {"manufacturer": "Lacuna simulator", "model": "virtual DBT, mid arc",
         "serial": "FEN-DBT-1", "station": "FENMOOR-DBT1",
         "site": "Fenmoor Breast Screening Service (fictional)", "software": "sim 1.0"}
 MONTHS = 12
-BASELINE_MONTHS = 3
-#: Detector drift per month (invented): light spread SD (mm) and electronic noise (quanta).
-BLUR_START_MM, BLUR_PER_MONTH_MM = 0.020, 0.0035
-ELECTRONIC_PER_MONTH = 2.2
+BASELINE_MONTHS = 4
+#: The detector is stable for the baseline months, then drifts each month (invented):
+#: light spread SD (mm) and electronic noise (quanta per pixel).
+BLUR_START_MM, BLUR_PER_MONTH_MM = 0.020, 0.0022
+ELECTRONIC_PER_MONTH = 6.0
 
 
 @dataclass(frozen=True)
@@ -48,8 +49,9 @@ def year_of_checks(today: dt.date, *, seed: int = 2026) -> tuple[MonthlyCheck, .
     out = []
     for k in range(MONTHS):
         date = today if k == MONTHS - 1 else _months_before(today, MONTHS - 1 - k)
-        out.append(MonthlyCheck(k, date.isoformat(), BLUR_START_MM + BLUR_PER_MONTH_MM * k,
-                                ELECTRONIC_PER_MONTH * k, seed + k))
+        drift = max(0, k - (BASELINE_MONTHS - 1))
+        out.append(MonthlyCheck(k, date.isoformat(), BLUR_START_MM + BLUR_PER_MONTH_MM * drift,
+                                ELECTRONIC_PER_MONTH * drift, seed + k))
     return tuple(out)
 
 

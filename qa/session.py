@@ -18,7 +18,7 @@ from . import __version__
 from .errors import InputError, NotMeasurable
 from .judge import Judged, Profile, judge_all, overall
 from .locate.layout import Layout
-from .locate.nominal import locate_nominal
+from .locate import locate
 from .measure.base import FamilyResult, Measurement, families
 from .phantom.model import Phantom
 from .volume import Volume
@@ -84,7 +84,7 @@ def measure_volume(volume: Volume, phantom: Phantom, *, layout: Layout | None = 
     -------
     (Layout, tuple of FamilyResult)
     """
-    layout = layout or locate_nominal(volume, phantom)
+    layout = layout or locate(volume, phantom)
     results = []
     for family in families():
         try:

@@ -38,7 +38,7 @@ def load_phantom(path) -> Phantom:
     analysis = doc.raw("analysis", {})
     if not isinstance(analysis, dict):
         raise doc.error("analysis", "expected a mapping of analysis options per metric family")
-    field_xyz = None
+    field_xyz = reference_z = None
     if doc.has("field_mm"):
         fd = doc.sub("field_mm")
         field_xyz = []
@@ -47,6 +47,7 @@ def load_phantom(path) -> Phantom:
             if not hi > lo:
                 raise fd.error(axis, f"expected [low, high] with high > low, got [{lo:g}, {hi:g}]")
             field_xyz.append((lo, hi))
+        reference_z = fd.number("reference_z", None)
         fd.reject_unknown()
         field_xyz = tuple(field_xyz)
     objects = []
@@ -58,7 +59,8 @@ def load_phantom(path) -> Phantom:
         seen[obj.id] = obj.line
         objects.append(obj)
     doc.reject_unknown()
-    phantom = Phantom(name, description, energy, tuple(objects), str(path), analysis, field_xyz)
+    phantom = Phantom(name, description, energy, tuple(objects), str(path), analysis, field_xyz,
+                      reference_z)
     _check_arrangement(phantom, doc)
     return phantom
 

@@ -95,6 +95,9 @@ class Phantom:
     analysis: Mapping = field(default_factory=dict)
     #: ``((x0, x1), (y0, y1), (z0, z1))`` in mm: the region a simulation reconstructs.
     field_xyz_mm: tuple | None = None
+    #: Height (mm) at which a simulation's voxel pitch equals the detector pitch
+    #: demagnified (``None``: the detector pitch itself).
+    reference_z_mm: float | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "objects", tuple(self.objects))

@@ -91,7 +91,7 @@ class NumberedCanvas(rl_canvas.Canvas):
 
 def _figure_image(fig, width_mm: float) -> Image:
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=170)
+    fig.savefig(buf, format="png", dpi=130)
     w_in, h_in = fig.get_size_inches()
     buf.seek(0)
     width = width_mm * mm
@@ -158,7 +158,7 @@ def _summary(result: SessionResult, st) -> list:
                      Paragraph(pdf_text(j.limit_text or "—"), st["cell"]),
                      Paragraph(pdf_text(base), st["cell"]), verdict_mark(j.verdict),
                      Paragraph(j.verdict, st["cell"])])
-    t = Table(rows, colWidths=[38 * mm, 30 * mm, 12 * mm, 50 * mm, 22 * mm, 5 * mm, 17 * mm],
+    t = Table(rows, colWidths=[38 * mm, 35 * mm, 12 * mm, 45 * mm, 22 * mm, 5 * mm, 17 * mm],
               repeatRows=1)
     t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "MIDDLE"),
                            ("LINEBELOW", (0, 0), (-1, 0), 0.8, ACCENT),
@@ -182,10 +182,20 @@ def _sections(result: SessionResult, volume, st) -> list:
 
     out = [PageBreak(), Paragraph("Where the test objects were found", st["h2"])]
     pose = result.layout.pose
-    out.append(Paragraph(pdf_text(
-        f"Pose: shift ({pose.shift_xy_mm[0]:.2f}, {pose.shift_xy_mm[1]:.2f}) mm, rotation "
-        f"{pose.rotation_deg:.2f}°, {'mirrored' if pose.mirrored else 'not mirrored'}, "
-        f"residual {pose.residual_mm:.2f} mm."), st["body"]))
+    if pose.fitted_from:
+        text = (f"Pose fitted from {', '.join(pose.fitted_from)}: shift "
+                f"({pose.shift_xy_mm[0]:.2f}, {pose.shift_xy_mm[1]:.2f}) mm in-plane, "
+                f"{pose.shift_z_mm:.2f} mm in height, rotation {pose.rotation_deg:.2f}°, "
+                f"{'mirrored' if pose.mirrored else 'not mirrored'}; residual "
+                f"{pose.residual_mm:.2f} mm.")
+    else:
+        text = "Pose not fitted: objects placed at their nominal positions."
+    if pose.note:
+        text += f" {pose.note}"
+    out.append(Paragraph(pdf_text(text), st["body"]))
+    missing = [p for p in result.layout.placed.values() if not p.found]
+    for p in missing:
+        out.append(Paragraph(pdf_text(p.note or f"{p.id} not found"), st["small"]))
     if volume is not None:
         out.append(_figure_image(overview_figure(volume, result.families, result.layout), 150))
     by_name = {f.name: f for f in registered_families()}

@@ -158,8 +158,9 @@ def trend_figure(trend: MetricTrend, *, width_in: float = 6.8, height_in: float 
             ax.annotate(text.strip(), (x[i], y[i]), xytext=(3, 4 if up else -9),
                         textcoords="offset points", fontsize=5.5, color="0.15")
     if off:
-        ax.set_title("off the chart: " + "; ".join(dict.fromkeys(off)), loc="right",
-                     fontsize=5.5, color="0.25")
+        ax.set_title(f"{trend.metric} ({trend.unit})\n", fontsize=8, loc="left")
+        ax.text(0.0, 1.02, "off the chart: " + "; ".join(dict.fromkeys(off)),
+                transform=ax.transAxes, fontsize=5.5, color="0.25", va="bottom")
     margin = 0.08 * (max(drawn) - min(drawn) or reach)
     ax.set_ylim(min(drawn) - margin, max(drawn) + margin)
     loc = AutoDateLocator(minticks=3, maxticks=8)
@@ -250,7 +251,7 @@ def _method_text() -> str:
 
 
 def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
-                    most_flagged: int = 10) -> list:
+                    most_flagged: int = 10, charts: str = "all") -> list:
     """The trend pages of :func:`trend_pages` from trends already computed."""
     st = styles()
     out = [PageBreak()] if new_page else []
@@ -286,7 +287,7 @@ def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
         out += [Spacer(1, 2 * mm), Paragraph(f"Latest flagged points (up to {most_flagged})",
                                              st["body"]),
                 data_table(flagged, (28, 16, 44, 40, 46), st)]
-    charted = [t for t in trends.metrics if _charted(t)]
+    charted = [t for t in trends.metrics if charts == "all" or _charted(t)]
     if len(charted) < len(trends.metrics):
         out.append(Paragraph("Charts follow for the headline figures and for every metric "
                              "whose latest point is outside a warning or action limit; the "
@@ -308,7 +309,7 @@ def _charted(trend: MetricTrend) -> bool:
 
 
 def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, current=None,
-                metrics=None, new_page: bool = True) -> list:
+                metrics=None, new_page: bool = True, charts: str = "all") -> list:
     """Trend pages for the PDF log's ``extra_pages``.
 
     Parameters
@@ -327,6 +328,9 @@ def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, cur
         Metrics to chart (default: all measured).
     new_page : bool
         Start with a page break (default True).
+    charts : {"all", "headline"}
+        Chart every metric, or only the headline figures and the metrics whose latest
+        point is outside a limit (the session log's choice; the table lists them all).
 
     Returns
     -------
@@ -349,7 +353,7 @@ def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, cur
             if stored:
                 trends = unit_trends(h, unit_id, phantom=phantom, metrics=metrics,
                                      profile=profile, current=current)
-                return trend_flowables(trends, new_page=new_page)
+                return trend_flowables(trends, new_page=new_page, charts=charts)
     st = styles()
     out = [PageBreak()] if new_page else []
     return out + [Paragraph(pdf_text(f"Trends — unit {unit_id}"), st["h2"]),

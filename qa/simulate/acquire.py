@@ -46,17 +46,31 @@ def _sub_offsets(n: int, width: float) -> np.ndarray:
 
 
 def transmission(phantom: Phantom, geometry: DbtGeometry, view: int) -> np.ndarray:
-    """Expected fraction of quanta reaching each pixel in one view, (rows, columns)."""
+    """Expected fraction of quanta reaching each pixel in one view, (rows, columns).
+
+    The pixel aperture is integrated over ``aperture_samples``² sub-rays for every solid
+    but the background, whose line integral is taken at the pixel centre: inside the
+    slab it varies linearly across a pixel (by ~1e-4 of itself at 0.1 mm pixels), so the
+    mean of ``exp(-p)`` over the aperture is ``exp(-p_bg(centre))`` times the mean over
+    the sub-rays of the other solids, to second order. Only the background's own outer
+    edges, which lie outside the reconstructed field, are not integrated.
+    """
     det = geometry.detector
     n = geometry.aperture_samples
     offs = _sub_offsets(n, det.pitch_mm * det.fill_factor)
     u = (det.u_mm()[:, None] + offs[None, :]).ravel()
     v = (det.v_mm()[:, None] + offs[None, :]).ravel()
+    terms = phantom.attenuating()
+    bg = [(o, d) for o, d in terms if o.role == "background"]
+    inserts = [(o, d) for o, d in terms if o.role != "background"]
     sources, weights = geometry.source_samples(view)
     total = np.zeros(det.shape)
     for src, w in zip(sources, weights):
-        t = np.exp(-line_integrals(phantom, src, u, v))
-        total += w * t.reshape(det.rows, n, det.columns, n).mean(axis=(1, 3))
+        t = np.exp(-line_integrals(phantom, src, u, v, terms=inserts))
+        t = t.reshape(det.rows, n, det.columns, n).mean(axis=(1, 3))
+        if bg:
+            t *= np.exp(-line_integrals(phantom, src, det.u_mm(), det.v_mm(), terms=bg))
+        total += w * t
     return total
 
 

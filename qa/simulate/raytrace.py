@@ -146,7 +146,8 @@ def grid_chords(shape: Shape, source, u_mm: np.ndarray, v_mm: np.ndarray) -> np.
     return _chord(lo, hi, length)
 
 
-def line_integrals(phantom: Phantom, source, u_mm: np.ndarray, v_mm: np.ndarray) -> np.ndarray:
+def line_integrals(phantom: Phantom, source, u_mm: np.ndarray, v_mm: np.ndarray, *,
+                   terms=None) -> np.ndarray:
     """Line integrals of attenuation from one source point to a grid of detector points.
 
     Parameters
@@ -156,6 +157,8 @@ def line_integrals(phantom: Phantom, source, u_mm: np.ndarray, v_mm: np.ndarray)
         Source position (mm).
     u_mm, v_mm : 1-D ndarray, increasing
         x positions of the detector columns and y positions of its rows (z = 0).
+    terms : sequence of (PhantomObject, delta_mu), optional
+        The solids to include (default: all, :meth:`Phantom.attenuating`).
 
     Returns
     -------
@@ -166,7 +169,7 @@ def line_integrals(phantom: Phantom, source, u_mm: np.ndarray, v_mm: np.ndarray)
     u_mm, v_mm = np.asarray(u_mm, float), np.asarray(v_mm, float)
     out = np.zeros((v_mm.size, u_mm.size))
     s = np.asarray(source, float)
-    for obj, delta in phantom.attenuating():
+    for obj, delta in (phantom.attenuating() if terms is None else terms):
         x0, x1, y0, y1 = footprint(obj.shape, s, margin_mm=1e-6)
         c0, c1 = np.searchsorted(u_mm, [x0, x1], side="left")[0], np.searchsorted(u_mm, x1, "right")
         r0, r1 = np.searchsorted(v_mm, y0, "left"), np.searchsorted(v_mm, y1, "right")

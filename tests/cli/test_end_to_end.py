@@ -99,8 +99,10 @@ def test_pdf_numbers_match_the_json(demo):
         shown = format_value(m["value"], m["uncertainty"])
         if m["value"] is None:
             continue
-        # The summary row: metric name, then its value ± uncertainty as printed.
-        assert re.search(re.escape(name) + r"\s+" + re.escape(shown), text), (name, shown)
+        # The summary row: metric name, then its value ± uncertainty as printed (a cell
+        # may wrap, so any white space stands for a space).
+        pattern = r"\s+".join(re.escape(part) for part in shown.split(" "))
+        assert re.search(re.escape(name) + r"\s+" + pattern, text), (name, shown)
         printed = float(shown.split(" ± ")[0])
         decimals = len(shown.split(" ± ")[0].partition(".")[2])
         assert printed == pytest.approx(m["value"], abs=0.5 * 10 ** -decimals + 1e-12)

@@ -28,7 +28,7 @@ def test_attenuation_from_xraydb_tables():
 
 
 @pytest.mark.parametrize("old,new,match", [
-    ("shape: sphere", "shape: pyramid", r"lacuna-dbt-demo.yaml:24, field 'objects\[1\].shape': expected one of"),
+    ("shape: sphere", "shape: pyramid", r"lacuna-dbt-demo.yaml:31, field 'objects\[1\].shape': expected one of"),
     ("    radius_mm: 0.5\n", "", r"field 'objects\[1\]': missing required field 'objects\[1\].radius_mm'"),
     ("role: bead", "role: widget", r"field 'objects\[1\].role': expected one of"),
     ("material: aluminium", "material: unobtainium", r"unknown material 'unobtainium'"),
