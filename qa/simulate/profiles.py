@@ -8,17 +8,18 @@ import numpy as np
 
 from ..yamlio import Fields, load_yaml
 from .geometry import MOTIONS, DbtGeometry, Detector
+from .sections import SECTION_KINDS, SectionGeometry
 
-KINDS = ("dbt",)
+KINDS = ("dbt",) + SECTION_KINDS
 
 
-def read_angles(doc: Fields, key: str = "angles_deg") -> tuple[float, ...]:
+def read_angles(doc: Fields, key: str = "angles_deg", *, limit: float = 89.0) -> tuple[float, ...]:
     """Angles as a list, or as ``{from, to, views}`` spaced evenly (ends included)."""
     raw = doc.raw(key)
     if isinstance(raw, dict):
         spec = doc.sub(key)
-        first = spec.number("from", minimum=-89.0, maximum=89.0)
-        last = spec.number("to", minimum=-89.0, maximum=89.0)
+        first = spec.number("from", minimum=-limit, maximum=limit)
+        last = spec.number("to", minimum=-limit, maximum=limit)
         views = spec.integer("views", minimum=2)
         spec.reject_unknown()
         if not last > first:
@@ -30,8 +31,32 @@ def read_angles(doc: Fields, key: str = "angles_deg") -> tuple[float, ...]:
     return angles
 
 
-def load_geometry(path) -> DbtGeometry:
-    """Read a DBT geometry profile.
+def _load_section(doc: Fields, name: str, kind: str, description: str) -> SectionGeometry:
+    angles = read_angles(doc, limit=360.0)
+    if max(angles) - min(angles) > 360.0 + 1e-9:
+        raise doc.error("angles_deg", "an angular range wider than 360° is not a section scan")
+    bin_mm = doc.number("bin_mm", positive=True)
+    pixel = doc.number("pixel_mm", positive=True)
+    plane = doc.number("plane_spacing_mm", 1.0, positive=True)
+    noise = doc.sub("noise", {})
+    photons = noise.raw("photons_per_bin", None)
+    if photons is not None:
+        photons = noise.number("photons_per_bin", positive=True)
+    noise.reject_unknown()
+    r = d = None
+    if kind == "section-fan":
+        r = doc.number("source_to_centre_mm", positive=True)
+        d = doc.number("source_to_detector_mm", positive=True)
+        if d <= r:
+            raise doc.error("source_to_detector_mm", f"must exceed source_to_centre_mm ({r:g})")
+    notes = doc.raw("notes", [])
+    doc.reject_unknown()
+    return SectionGeometry(name, description, kind, angles, bin_mm, pixel, plane, photons, r, d,
+                           tuple(notes))
+
+
+def load_geometry(path) -> DbtGeometry | SectionGeometry:
+    """Read a geometry profile: a DBT unit, or a parallel- or fan-beam section scanner.
 
     Raises
     ------
@@ -42,8 +67,10 @@ def load_geometry(path) -> DbtGeometry:
     path = Path(path)
     doc = Fields(load_yaml(path), str(path))
     name = doc.text("geometry")
-    doc.choice("kind", KINDS)
+    kind = doc.choice("kind", KINDS)
     description = doc.text("description", "")
+    if kind in SECTION_KINDS:
+        return _load_section(doc, name, kind, description)
     sid = doc.number("source_to_image_mm", positive=True)
     pivot = doc.number("pivot_height_mm", 0.0, minimum=0.0)
     if pivot >= sid:
