@@ -163,9 +163,34 @@ def kept_meta(ds: Dataset) -> dict:
     return meta
 
 
-#: Header attributes whose values must not appear in a path that leaves the reader.
+#: Header attributes whose values must not appear in a path that leaves the reader: the
+#: patient's names, IDs, birth date and accession number, and the names of the study's
+#: physicians (all listed in PS3.15 Table E.1-1). Exports are often filed in folders
+#: named after any of them (the patient, the requesting or referring physician).
 _IDENTIFYING = ("PatientName", "PatientID", "OtherPatientIDs", "PatientBirthDate",
-                "AccessionNumber", "OtherPatientNames", "PatientBirthName")
+                "AccessionNumber", "OtherPatientNames", "PatientBirthName",
+                "PatientMotherBirthName", "ReferringPhysicianName",
+                "PerformingPhysicianName", "NameOfPhysiciansReadingStudy",
+                "RequestingPhysician")
+#: Date-valued identifiers among them: also cut out when a path spells the date another
+#: way (see :func:`date_spellings`).
+_DATES = ("PatientBirthDate",)
+_DATE_SEPARATOR = r"[-._ ]?"
+
+
+def date_spellings(value) -> str | None:
+    """A regular expression matching a DICOM date ``YYYYMMDD`` as file names spell it.
+
+    Year first, day first or month first, with or without one of ``- . _`` or a space
+    between the parts (``19610203``, ``1961-02-03``, ``03.02.1961``, ``02-03-1961``);
+    ``None`` when ``value`` is not an eight-digit date.
+    """
+    m = re.fullmatch(r"(\d{4})(\d{2})(\d{2})", str(value).strip())
+    if m is None:
+        return None
+    y, mo, d = m.groups()
+    orders = ((y, mo, d), (d, mo, y), (mo, d, y))
+    return "|".join(_DATE_SEPARATOR.join(parts) for parts in orders)
 
 
 def scrub_path(path, ds: Dataset) -> str:
@@ -173,20 +198,26 @@ def scrub_path(path, ds: Dataset) -> str:
 
     Scanners and PACS exports often name folders or files after the patient; the source
     path is shown in logs, JSON and the history, so each identifier found in the header
-    (name components of three or more characters, IDs, birth date, accession number)
-    is cut out of it, case-insensitively.
+    (name components of three or more characters, IDs, accession number, the names of
+    the study's physicians, and the birth date however the path spells it: see
+    :func:`date_spellings`) is cut out of it, case-insensitively.
     """
     text = str(path)
     words: set[str] = set()
+    patterns: list[str] = []
     for keyword in _IDENTIFYING:
         value = ds.get(keyword)
         if value is None or value == "":
             continue
         values = value if isinstance(value, (list, tuple, MultiValue)) else [value]
         for v in values:
+            if keyword in _DATES and (spelled := date_spellings(v)) is not None:
+                patterns.append(spelled)
+                continue
             for part in re.split(r"[\^=\s,]+", str(v)):
                 if len(part) >= 3:
                     words.add(part)
-    for word in sorted(words, key=len, reverse=True):
-        text = re.sub(re.escape(word), "[patient]", text, flags=re.IGNORECASE)
+    patterns += [re.escape(w) for w in sorted(words, key=len, reverse=True)]
+    for pattern in patterns:
+        text = re.sub(pattern, "[patient]", text, flags=re.IGNORECASE)
     return text
