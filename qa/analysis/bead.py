@@ -14,7 +14,7 @@ import numpy as np
 
 from ..errors import NotMeasurable
 from ..volume import Volume
-from .roi import disk_mask
+from .roi import disk_weights
 
 
 @dataclass(frozen=True)
@@ -96,11 +96,13 @@ def bead_signals(volume: Volume, centre_xy_mm: tuple[float, float], bead_radius_
     h = int(np.ceil(r_px)) + 1
     r_lo, c_lo = int(round(iy)) - h, int(round(ix)) - h
     window = data[:, r_lo:r_lo + 2 * h + 1, c_lo:c_lo + 2 * h + 1].astype(np.float64)
-    mask = disk_mask(window.shape[1:], (iy - r_lo, ix - c_lo), r_px)
+    # Area-weighted pixels: the region's mean does not jump with the bead's sub-pixel
+    # position (a binary disk changed its pixel count from 82 to 85 and the FWHM by 1.4 %).
+    mask = disk_weights(window.shape[1:], (iy - r_lo, ix - c_lo), r_px)
     bead_mean = (window * mask).sum(axis=(1, 2)) / mask.sum()
     bg_mean = 0.5 * (strip_a.mean(axis=(1, 2)) + strip_b.mean(axis=(1, 2)))
     # Tiles of the strips as large as the bead region give the SD of such a mean.
-    n_pix = int(mask.sum())
+    n_pix = int(round(mask.sum()))
     tile_w = max(1, int(round(n_pix / n_rows)))
     tiles = []
     for strip in (strip_a, strip_b):

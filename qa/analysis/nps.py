@@ -100,8 +100,10 @@ def polynomial_trend(values: np.ndarray, mask: np.ndarray | None = None, *,
 def tile_rois(mask: np.ndarray, *, roi_px: int, overlap: float = 0.5) -> list[tuple[int, int]]:
     """Upper-left corners of square ROIs lying wholly inside ``mask``.
 
-    ROIs are stepped by ``roi_px * (1 - overlap)`` pixels along both axes from the upper-
-    left corner of the mask's bounding box.
+    ROIs are stepped by ``roi_px * (1 - overlap)`` pixels along both axes. The grid's
+    offset from the mask's bounding box is the one (of the ``step x step`` possible)
+    that fits the most ROIs, so a region turned against the pixel axes is tiled as
+    fully as an upright one (ties go to the smallest offset).
     """
     if not 0.0 <= overlap < 1.0:
         raise InputError(f"ROI overlap must be in [0, 1), got {overlap}", field="overlap")
@@ -111,14 +113,25 @@ def tile_rois(mask: np.ndarray, *, roi_px: int, overlap: float = 0.5) -> list[tu
     outside = np.pad(np.cumsum(np.cumsum(~mask, 0), 1), ((1, 0), (1, 0)))
     rows, cols = np.nonzero(mask)
     step = max(1, int(round(roi_px * (1.0 - overlap))))
-    corners = []
-    for iy in range(rows.min(), rows.max() - roi_px + 2, step):
-        for ix in range(cols.min(), cols.max() - roi_px + 2, step):
-            bad = (outside[iy + roi_px, ix + roi_px] - outside[iy, ix + roi_px]
-                   - outside[iy + roi_px, ix] + outside[iy, ix])
-            if bad == 0:
-                corners.append((int(iy), int(ix)))
-    return corners
+    r0, r1 = rows.min(), rows.max() - roi_px + 2
+    c0, c1 = cols.min(), cols.max() - roi_px + 2
+    if r1 <= r0 or c1 <= c0:
+        return []
+    # fits[iy, ix]: the ROI with upper-left corner (r0 + iy, c0 + ix) lies inside the mask.
+    iy = np.arange(r0, r1)[:, None]
+    ix = np.arange(c0, c1)[None, :]
+    bad = (outside[iy + roi_px, ix + roi_px] - outside[iy, ix + roi_px]
+           - outside[iy + roi_px, ix] + outside[iy, ix])
+    fits = bad == 0
+    best, best_count = (0, 0), -1
+    for oy in range(min(step, fits.shape[0])):
+        for ox in range(min(step, fits.shape[1])):
+            count = int(fits[oy::step, ox::step].sum())
+            if count > best_count:
+                best, best_count = (oy, ox), count
+    oy, ox = best
+    sub = fits[oy::step, ox::step]
+    return [(int(r0 + oy + a * step), int(c0 + ox + b * step)) for a, b in zip(*np.nonzero(sub))]
 
 
 def nps_2d(plane: np.ndarray, *, spacing_mm, mask: np.ndarray | None = None,

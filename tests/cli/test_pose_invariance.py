@@ -62,16 +62,6 @@ DEPTH = ("asf_fwhm", "bead_height_error", "streak_half_angle")
 METRICS = MTF + DEPTH + ("noise_sd", "uniformity") + tuple(
     f"{f}_{d}" for d in DISKS for f in ("sdnr", "dprime_npw", "dprime_npwe", "threshold_contrast"))
 IN_PLANE = tuple(m for m in METRICS if m not in DEPTH)
-KNOWN = {  # defects outside the locator and readers, reported; strict: XPASS once fixed
-    ("shift", "asf_fwhm"): "the ASF bead region is a binary disk (qa/analysis/bead.py): "
-    "its pixel count (85 vs 82) follows the bead's sub-pixel place and moves the FWHM "
-    "by 1.4 %, 6 times its uncertainty",
-    ("turn", "dprime_npw_d6"): "NPS ROIs are stepped from the corner of the region's "
-    "bounding box (qa/analysis/nps.py tile_rois): turned 3 deg the uniform region gets 4 "
-    "of 9 ROIs where 8 fit, and NPW d' of the 6 mm disk goes from 8.2 to 15.0 (7.9 with "
-    "the grid placed to hold the most ROIs)"}
-
-
 # --- the transforms (world points (x, y) mm; arrays [z, y, x]) --------------------------
 def _padded(vol, pad_mm):
     """``vol`` padded in-plane (edge values); the origin follows, so nothing moves yet."""
@@ -337,9 +327,7 @@ def _cases():
         for m in METRICS:
             if (name, m) == ("turn", "streak_half_angle"):
                 continue  # not comparable: see test_turn_streak_half_angle
-            marks = [pytest.mark.xfail(strict=True, reason=KNOWN[name, m])] \
-                if (name, m) in KNOWN else []
-            yield pytest.param(name, m, marks=marks, id=f"{name}-{m}")
+            yield pytest.param(name, m, id=f"{name}-{m}")
 
 
 @pytest.mark.parametrize("name,metric", list(_cases()))
