@@ -13,6 +13,10 @@ anything else                 a DICOM file if it carries the ``DICM`` marker
                               (:mod:`qa.io.dicom_read`), else refused
 ============================  ============================================================
 
+A large DICOM volume with uncompressed pixel data is not loaded: its volume's
+``data`` is a :class:`~qa.io.lazy.FrameStack` that reads the planes and blocks it is
+indexed for (the ``lazy`` option of :func:`read_volume`).
+
 Writers: :func:`write_npz` (bit-exact) and :func:`write_dicom` (Breast Tomosynthesis
 Image Storage, within half a quantum). Both write atomically. Every bad input raises
 :class:`~qa.errors.InputError` with a one-line message naming the file.
@@ -55,7 +59,7 @@ def _is_dicom(path: Path) -> bool:
     return len(head) == 132 and head[128:] == b"DICM"
 
 
-def read_volume(path, *, series: str | None = None) -> Volume:
+def read_volume(path, *, series: str | None = None, lazy: bool | None = None) -> Volume:
     """Read a volume from a file or folder.
 
     Parameters
@@ -65,6 +69,11 @@ def read_volume(path, *, series: str | None = None) -> Volume:
     series : str, optional
         For a folder holding several series: the Series Instance UID, Series Description
         or Series Number to read.
+    lazy : bool, optional
+        For DICOM (a multi-frame file or a folder of slices): read the voxels on demand
+        rather than into memory (``None``: for volumes of at least
+        :data:`qa.io.dicom_read.LAZY_MIN_BYTES` as float32; ``True``: whenever the pixel
+        data are uncompressed; ``False``: never). Other formats are read into memory.
 
     Returns
     -------
@@ -81,7 +90,7 @@ def read_volume(path, *, series: str | None = None) -> Volume:
     if not path.exists():
         raise InputError("file not found", source=str(path))
     if path.is_dir():
-        return read_dicom_folder(path, series=series)
+        return read_dicom_folder(path, series=series, lazy=lazy)
     if series is not None:
         raise InputError("the series option applies to a folder of DICOM slices only",
                          source=str(path))
@@ -93,7 +102,7 @@ def read_volume(path, *, series: str | None = None) -> Volume:
     except OSError as exc:
         raise InputError(f"cannot read: {exc}", source=str(path)) from None
     if dicom or path.suffix.lower() == ".dcm":
-        return read_dicom_file(path)
+        return read_dicom_file(path, lazy=lazy)
     raise InputError("unknown volume format: expected .npz, .npy or .tif/.tiff with a "
                      "spacing sidecar, a DICOM file, or a folder of DICOM slices",
                      source=str(path))

@@ -5,7 +5,8 @@ DICOM files that are not images (no Rows and no Pixel Data: a DICOMDIR, a struct
 report), are skipped; an image file cut short is refused, not skipped. Only
 the folder itself is read, not its sub-folders. The slices of one series are ordered
 by Image Position (Patient) along the plane normal (:mod:`qa.io.dicom_geometry`) and
-checked like the frames of a multi-frame object.
+checked like the frames of a multi-frame object. Large series of uncompressed slices are
+read on demand, as large multi-frame files are (:class:`qa.io.lazy.FrameStack`).
 """
 
 from __future__ import annotations
@@ -21,8 +22,9 @@ from ..errors import InputError
 from ..volume import Volume
 from ._files import frozen
 from .dicom_geometry import order_planes
-from .dicom_read import (check_pixels, common_facts, fill_planes, pixel_spacing,
-                         read_header, value_facts, value_map)
+from .dicom_read import (LAZY_MIN_BYTES, check_pixels, common_facts, fill_planes,
+                         pixel_layout, pixel_spacing, read_header, value_facts, value_map)
+from .lazy import FrameStack
 
 
 @dataclass(frozen=True)
@@ -39,6 +41,7 @@ class _Slice:
     pixel_spacing: tuple = ()
     size: tuple = ()
     value_map: tuple = ()
+    pixels: tuple | None = None  # (PixelLayout, offset) of uncompressed pixel data
 
 
 def _slice(f: Path, ds) -> _Slice:
@@ -59,7 +62,8 @@ def _slice(f: Path, ds) -> _Slice:
                       pixel_spacing=pixel_spacing(ds.get("PixelSpacing"), f),
                       size=(int(ds.Rows), int(ds.Columns)),
                       value_map=value_map(ds.get("RescaleSlope"), ds.get("RescaleIntercept"),
-                                          rwvm[0] if rwvm else None))
+                                          rwvm[0] if rwvm else None),
+                      pixels=pixel_layout(ds, 1))
     except InputError as exc:
         return _Slice(**ident, problem=exc)
 
@@ -90,7 +94,8 @@ def _select(series: dict, wanted: str | None, folder: Path) -> list:
     return chosen[0]
 
 
-def read_dicom_folder(path, *, series: str | None = None) -> Volume:
+def read_dicom_folder(path, *, series: str | None = None,
+                      lazy: bool | None = None) -> Volume:
     """Read the single-frame DICOM slices in a folder as a volume.
 
     Parameters
@@ -100,6 +105,11 @@ def read_dicom_folder(path, *, series: str | None = None) -> Volume:
     series : str, optional
         Series Instance UID, Series Description or Series Number of the series to read
         when the folder holds several.
+    lazy : bool, optional
+        Read the voxels on demand from the slice files, as
+        :func:`qa.io.dicom_read.read_dicom_file` does (``None``: for volumes of at least
+        :data:`~qa.io.dicom_read.LAZY_MIN_BYTES` as float32; possible when every slice is
+        uncompressed with the same word layout).
 
     Raises
     ------
@@ -140,9 +150,17 @@ def read_dicom_folder(path, *, series: str | None = None) -> Volume:
     stack = order_planes([s.position for s in slices], [s.orientation for s in slices],
                          dy_dx, str(folder), names)
     maps = [s.value_map for s in slices]
-    out = np.empty((len(slices),) + sizes.pop(), dtype=np.float32)
-    fill_planes(out, (pixel_array(s.path) for s in slices), stack.plane_of_frame, maps,
-                folder, notes, names)
+    shape = (len(slices),) + sizes.pop()
+    layouts = {s.pixels[0] if s.pixels else None for s in slices}
+    if (lazy is not False and len(layouts) == 1 and None not in layouts
+            and (lazy or 4 * int(np.prod(shape)) >= LAZY_MIN_BYTES)):
+        data = FrameStack([(s.path, s.pixels[1]) for s in slices], layouts.pop(),
+                          plane_of_frame=stack.plane_of_frame, maps=[m[:2] for m in maps])
+    else:
+        out = np.empty(shape, dtype=np.float32)
+        fill_planes(out, (pixel_array(s.path) for s in slices), stack.plane_of_frame, maps,
+                    folder, notes, names)
+        data = frozen(out)
 
     first, _ = read_header(slices[int(np.argmin(stack.plane_of_frame))].path)
     meta = common_facts(first, folder, notes)
@@ -153,4 +171,4 @@ def read_dicom_folder(path, *, series: str | None = None) -> Volume:
                          ("SpacingBetweenSlices", "stated_spacing_between_slices_mm")):
         if first.get(keyword) is not None:
             meta[key] = float(first.get(keyword))
-    return Volume(frozen(out), stack.spacing_mm, stack.origin_mm, meta)
+    return Volume(data, stack.spacing_mm, stack.origin_mm, meta)

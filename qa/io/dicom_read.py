@@ -5,6 +5,11 @@ normal (:mod:`qa.io.dicom_geometry`, never by file or frame order), decoded one 
 time into a single preallocated float32 array with their value mapping applied, and the
 header is reduced to the allow-listed facts of :mod:`qa.io.deidentify`.
 
+A large multi-frame file with uncompressed little-endian pixel data is not decoded at
+all: its volume is a :class:`qa.io.lazy.FrameStack` that reads the frames and rows it is
+indexed for, with the same order and value mapping (see :data:`LAZY_MIN_BYTES` and the
+``lazy`` option of :func:`read_dicom_file`).
+
 Value mapping, per frame: Rescale Slope/Intercept (Pixel Value Transformation, shared
 or per frame, or top-level for single-frame slices); when that is absent or the
 identity, as the Breast Tomosynthesis IOD requires, a linear Real World Value Mapping
@@ -38,8 +43,12 @@ from ..volume import Volume
 from ._files import frozen, one_line
 from .deidentify import kept_meta, scrub_path
 from .dicom_geometry import order_planes
+from .lazy import FrameStack, PixelLayout, frames_of_file
 
 _UNDEFINED = 0xFFFFFFFF
+#: A multi-frame file whose volume would take at least this as float32 is read on demand
+#: when its pixel data allow it (256 MiB: some 45 planes of 1200 x 1200 voxels).
+LAZY_MIN_BYTES = 256 * 2 ** 20
 
 
 @contextlib.contextmanager
@@ -228,8 +237,43 @@ def common_facts(ds: Dataset, path: Path, warned: list) -> dict:
     return meta
 
 
-def read_dicom_file(path) -> Volume:
+def pixel_layout(ds: Dataset, nframes: int) -> tuple[PixelLayout, int] | None:
+    """Word layout and file offset of uncompressed little-endian pixel data, else None.
+
+    None for encapsulated (compressed), deflated or big-endian transfer syntaxes, words
+    other than 8, 16 or 32 bits, and pixel data whose place in the file is not known
+    (read with the header, or of undefined length).
+    """
+    tsyntax = ds.file_meta.TransferSyntaxUID
+    if tsyntax.is_encapsulated or tsyntax.is_deflated or not tsyntax.is_little_endian:
+        return None
+    bits = int(ds.BitsAllocated)
+    stored = int(ds.get("BitsStored", bits) or bits)
+    if bits not in (8, 16, 32) or not 1 <= stored <= bits:
+        return None
+    raw = ds.get_item("PixelData", keep_deferred=True)
+    offset, length = getattr(raw, "value_tell", None), getattr(raw, "length", None)
+    if offset is None or length is None or length == _UNDEFINED:
+        return None
+    layout = PixelLayout(int(ds.Rows), int(ds.Columns), bits, stored,
+                         int(ds.get("PixelRepresentation", 0) or 0) == 1)
+    if length < nframes * layout.frame_bytes:
+        return None
+    return layout, int(offset)
+
+
+def read_dicom_file(path, *, lazy: bool | None = None) -> Volume:
     """Read an enhanced multi-frame DICOM volume (Breast Tomosynthesis Image and kin).
+
+    Parameters
+    ----------
+    path : str or Path
+    lazy : bool, optional
+        Read the voxels on demand (:class:`qa.io.lazy.FrameStack`) instead of into an
+        array. ``None`` (default): when the float32 volume would take at least
+        :data:`LAZY_MIN_BYTES`; ``True``: whenever the pixel data allow it
+        (:func:`pixel_layout`); ``False``: never. Compressed pixel data are always read
+        into memory, frame by frame. Either way the voxels are the same, bit for bit.
 
     Raises
     ------
@@ -270,8 +314,16 @@ def read_dicom_file(path) -> Volume:
     dy_dx = pixel_spacing(spacings.pop(), path)
     stack = order_planes(positions, orientations, dy_dx, str(path))
     maps = _frame_maps(ds, nframes)
-    out = np.empty((nframes, int(ds.Rows), int(ds.Columns)), dtype=np.float32)
-    fill_planes(out, iter_pixels(path), stack.plane_of_frame, maps, path, warned)
+    shape = (nframes, int(ds.Rows), int(ds.Columns))
+    found = pixel_layout(ds, nframes) if lazy is not False else None
+    if found is not None and (lazy or 4 * int(np.prod(shape)) >= LAZY_MIN_BYTES):
+        layout, offset = found
+        data = FrameStack(frames_of_file(path, offset, layout, nframes), layout,
+                          plane_of_frame=stack.plane_of_frame, maps=[m[:2] for m in maps])
+    else:
+        out = np.empty(shape, dtype=np.float32)
+        fill_planes(out, iter_pixels(path), stack.plane_of_frame, maps, path, warned)
+        data = frozen(out)
 
     meta = common_facts(ds, path, warned)
     meta.update(stack.facts)
@@ -283,4 +335,4 @@ def read_dicom_file(path) -> Volume:
         value = _group_value(ds, 0, "PixelMeasuresSequence", keyword)
         if value is not None:
             meta[key] = float(value)
-    return Volume(frozen(out), stack.spacing_mm, stack.origin_mm, meta)
+    return Volume(data, stack.spacing_mm, stack.origin_mm, meta)

@@ -89,7 +89,11 @@ def quantise(data: np.ndarray, *, source: str | None = None
     voxel: the quantisation error is at most half a quantum (plus float64 rounding,
     some 1e-16 of the range). A constant volume gets ``m = 1`` and is stored exactly.
     """
-    lo, hi = float(np.min(data)), float(np.max(data))
+    if isinstance(data, np.ndarray):
+        lo, hi = float(np.min(data)), float(np.max(data))
+    else:  # a LazyStack: its range plane by plane, never the whole volume at once
+        ranges = [(float(np.min(p)), float(np.max(p))) for p in data]
+        lo, hi = min(r[0] for r in ranges), max(r[1] for r in ranges)
     if not (np.isfinite(lo) and np.isfinite(hi)):
         raise InputError("the volume holds NaN or infinite values; DICOM cannot store them",
                          source=source, field="data")
