@@ -26,7 +26,7 @@ def register(name: str, description: str):
 
 def methods() -> dict[str, str]:
     """Registered reconstruction names and their one-line descriptions."""
-    from . import fbp, saa  # noqa: F401  (each module registers itself)
+    from . import fbp, saa, sart, tv  # noqa: F401  (each module registers itself)
     return {k: v[1] for k, v in sorted(_METHODS.items())}
 
 

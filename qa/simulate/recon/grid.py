@@ -82,12 +82,60 @@ def plane_taps(source_xyz: np.ndarray, z_mm: float, grid: ReconGrid,
     return cols, rows
 
 
+#: Output rows per pass of :func:`sample`: its work buffers stay small and are reused
+#: from block to block instead of fresh page-mapped arrays for every call.
+SAMPLE_BLOCK_ROWS = 64
+
+
+def _sample_rows(out, sub, rows, lo, hi, ci, wc0, wc1, wr0, wr1, span):
+    """Rows ``lo:hi`` of :func:`sample` into ``out`` (columns ``span``)."""
+    n = min(SAMPLE_BLOCK_ROWS, hi - lo)
+    r, t = np.empty((n, sub.shape[1])), np.empty((n, sub.shape[1]))
+    a, b = np.empty((n, ci.size)), np.empty((n, ci.size))
+    ci1 = ci + 1
+    for j0 in range(lo, hi, n):
+        j1 = min(j0 + n, hi)
+        rj, tj, aj, bj = r[:j1 - j0], t[:j1 - j0], a[:j1 - j0], b[:j1 - j0]
+        np.multiply(sub[rows.index[j0:j1]], wr0[j0:j1, None], out=rj)
+        np.multiply(sub[rows.index[j0:j1] + 1], wr1[j0:j1, None], out=tj)
+        rj += tj
+        np.take(rj, ci, axis=1, out=aj, mode="wrap")
+        np.take(rj, ci1, axis=1, out=bj, mode="wrap")
+        aj *= wc0
+        bj *= wc1
+        np.add(aj, bj, out=out[j0:j1, span])
+
+
 def sample(image: np.ndarray, cols: Taps, rows: Taps) -> np.ndarray:
-    """Bilinear samples ``(ny, nx)`` of a detector image at the taps (0 outside)."""
-    r = (image[rows.index] * (1.0 - rows.weight)[:, None]
-         + image[rows.index + 1] * rows.weight[:, None])
-    out = r[:, cols.index] * (1.0 - cols.weight) + r[:, cols.index + 1] * cols.weight
-    return out * (rows.valid[:, None] & cols.valid[None, :])
+    """Bilinear samples ``(ny, nx)`` of a detector image at the taps (0 outside).
+
+    Notes
+    -----
+    ``out[j, i] = (1 - wc_i) r_j[c_i] + wc_i r_j[c_i + 1]`` of the row-interpolated
+    ``r_j = (1 - wr_j) image[k_j] + wr_j image[k_j + 1]`` in float64, 0 where a tap is
+    invalid. Only the detector columns the plane reaches are read, a block of rows at a
+    time with work buffers reused between blocks. numpy releases the GIL in these
+    loops, so calls for different planes can run in parallel threads.
+    """
+    ny, nx = rows.index.size, cols.index.size
+    valid_r, valid_c = np.flatnonzero(rows.valid), np.flatnonzero(cols.valid)
+    if valid_r.size == 0 or valid_c.size == 0:
+        return np.zeros((ny, nx))
+    j_lo, j_hi = int(valid_r[0]), int(valid_r[-1]) + 1
+    i_lo, i_hi = int(valid_c[0]), int(valid_c[-1]) + 1
+    out = np.empty((ny, nx))      # every element is written once: the margins here
+    out[:j_lo] = 0.0
+    out[j_hi:] = 0.0
+    out[j_lo:j_hi, :i_lo] = 0.0
+    out[j_lo:j_hi, i_hi:] = 0.0
+    ci = cols.index[i_lo:i_hi]
+    c0 = int(ci.min())
+    ok_c, w_c = cols.valid[i_lo:i_hi], cols.weight[i_lo:i_hi]
+    _sample_rows(out, image[:, c0:int(ci.max()) + 2], rows, j_lo, j_hi, ci - c0,
+                 np.where(ok_c, 1.0 - w_c, 0.0), np.where(ok_c, w_c, 0.0),
+                 np.where(rows.valid, 1.0 - rows.weight, 0.0),
+                 np.where(rows.valid, rows.weight, 0.0), slice(i_lo, i_hi))
+    return out
 
 
 def spread(plane: np.ndarray, cols: Taps, rows: Taps, shape: tuple[int, int]) -> np.ndarray:
