@@ -38,7 +38,7 @@ import numpy as np
 from ..errors import InputError
 from .exact2d import (check_angles, check_length, check_sinogram, pixel_centres_mm,
                       ray_integrals)
-from .section2d import angular_weights_rad, ramp_filter
+from .section2d import angular_weights_rad, ramp_filter, sirt_iterate
 
 
 @dataclass(frozen=True, eq=False, kw_only=True)
@@ -264,6 +264,25 @@ def fbp_fan(sinogram, geometry: FanBeam, *, filter_name: str = "ramp") -> np.nda
         value = np.interp(position, np.arange(-1, g.n_det + 1), padded)
         out += value * (r / along) ** 2
     return out
+
+
+def sirt_fan(sinogram, geometry: FanBeam, *, n_iter: int = 100, relaxation: float = 1.0,
+             rtol: float = 1e-4, nonnegative: bool = False):
+    """SIRT with the matched fan-beam pair of :class:`FanBeam`.
+
+    Returns ``(image, history)`` as :func:`~qa.simulate.section2d.sirt_parallel`, whose
+    Notes (row- and column-normalised simultaneous updates, stopping rule) apply
+    unchanged. Redundant rays need no weights here: the least-squares solution counts
+    every measured line, and a line measured twice simply weighs twice.
+
+    References
+    ----------
+    A. H. Andersen and A. C. Kak, "Simultaneous algebraic reconstruction technique
+    (SART)", Ultrasonic Imaging 6, 81-94 (1984).
+    """
+    s = check_sinogram(sinogram, len(geometry.angles_deg), geometry.n_det)
+    return sirt_iterate(geometry, s, n_iter=n_iter, relaxation=relaxation, rtol=rtol,
+                        nonnegative=nonnegative)
 
 
 def project_fan(image, *, angles_deg, pixel_mm: float, source_centre_mm: float,

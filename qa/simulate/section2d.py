@@ -370,11 +370,23 @@ def sirt_parallel(sinogram, *, angles_deg, pixel_mm: float, shape, det_mm: float
     """
     angles = check_angles(angles_deg)
     b = check_sinogram(sinogram, len(angles))
+    beam = ParallelBeam(shape=shape, pixel_mm=pixel_mm, angles_deg=angles, n_det=b.shape[1],
+                        det_mm=det_mm, kernel=model)
+    return sirt_iterate(beam, b, n_iter=n_iter, relaxation=relaxation, rtol=rtol,
+                        nonnegative=nonnegative)
+
+
+def sirt_iterate(beam, b, *, n_iter: int, relaxation: float, rtol: float,
+                 nonnegative: bool):
+    """The SIRT loop of :func:`sirt_parallel` for any matched pair.
+
+    ``beam`` has ``shape``, ``project(image)`` and ``backproject(sinogram)``, the exact
+    transpose of ``project`` (:class:`ParallelBeam`, :class:`~qa.simulate.fan2d.FanBeam`);
+    ``b`` is its sinogram. Returns ``(image, history)`` as :func:`sirt_parallel`.
+    """
     if not 0 < relaxation < 2 or int(n_iter) < 1:
         raise InputError(f"SIRT needs 0 < relaxation < 2 and n_iter >= 1, got {relaxation!r}, "
                          f"{n_iter!r}", field="relaxation")
-    beam = ParallelBeam(shape=shape, pixel_mm=pixel_mm, angles_deg=angles, n_det=b.shape[1],
-                        det_mm=det_mm, kernel=model)
     rows, cols = beam.project(np.ones(beam.shape)), beam.backproject(np.ones(b.shape))
     r = np.divide(1.0, rows, out=np.zeros_like(rows), where=rows > 1e-12 * rows.max())
     c = np.divide(relaxation, cols, out=np.zeros_like(cols), where=cols > 1e-12 * cols.max())

@@ -19,11 +19,11 @@ from ..errors import InputError
 from ..phantom.model import Phantom
 from ..volume import Volume
 from .exact2d import ellipse, parallel_integrals, rectangle
-from .fan2d import FanBeam, exact_fan_sinogram, fbp_fan
+from .fan2d import FanBeam, exact_fan_sinogram, fbp_fan, sirt_fan
 from .section2d import reconstruct_section
 
 SECTION_KINDS = ("section-parallel", "section-fan")
-SECTION_RECONS = {"section-parallel": ("fbp", "sirt"), "section-fan": ("fbp",)}
+SECTION_RECONS = {"section-parallel": ("fbp", "sirt"), "section-fan": ("fbp", "sirt")}
 
 
 @dataclass(frozen=True)
@@ -140,7 +140,7 @@ def simulate_sections(phantom: Phantom, geometry: SectionGeometry, *, recon: str
                                          shape=(ny, nx), method=recon, det_mm=geometry.bin_mm)
         else:
             sino = _noisy(exact_fan_sinogram(objects, fan), photons, rng)
-            out[k] = fbp_fan(sino, fan)
+            out[k] = fbp_fan(sino, fan) if recon == "fbp" else sirt_fan(sino, fan)[0]
         sinograms.append(sino.astype(np.float32))
     meta = {"simulated": "yes", "phantom": phantom.name, "geometry": geometry.name,
             "reconstruction": recon, "views": geometry.n_views,
