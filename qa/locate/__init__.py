@@ -32,6 +32,8 @@
 6. When fewer than two beads are found in agreement the nominal pose is used, and the
    beads are searched for at their nominal places: ``Pose.fitted_from`` is empty,
    ``residual_mm`` NaN and ``Pose.note`` says why.
+   If then not one test object lies inside the volume even at its nominal place (a
+   volume of the wrong phantom or spacing, or a few voxels), the volume is refused.
 
 An object not found within its search radius gets ``found=False`` and the note
 ``"<id> not found near (x, y, z) mm: <reason>"``; the metric families turn that into
@@ -48,6 +50,7 @@ import math
 
 import numpy as np
 
+from ..errors import InputError
 from ..phantom.model import Phantom
 from ..volume import Volume
 from ..yamlio import Fields
@@ -113,6 +116,20 @@ def _where(xyz) -> str:
 def _inside(volume: Volume, xyz) -> bool:
     idx = volume.to_index((xyz[2], xyz[1], xyz[0]))
     return all(-0.5 <= i <= n - 0.5 for i, n in zip(idx, volume.shape))
+
+
+def _require_overlap(volume: Volume, phantom: Phantom) -> None:
+    """Refuse a volume in which no test object lies, even at its nominal place."""
+    objects = [o for o in phantom.objects if o.role != "background"]
+    if not objects or any(_inside(volume, o.shape.centre_xyz_mm) for o in objects):
+        return
+    lo = volume.to_mm((-0.5, -0.5, -0.5))
+    hi = volume.to_mm(np.asarray(volume.shape, float) - 0.5)
+    span = ", ".join(f"{a} {lo[k]:.1f} to {hi[k]:.1f}" for k, a in ((2, "x"), (1, "y"), (0, "z")))
+    shape = " x ".join(str(n) for n in volume.shape)
+    raise InputError(f"no test object of phantom '{phantom.name}' lies inside the volume "
+                     f"({shape} voxels; {span} mm) and its beads give no pose; expected "
+                     "a reconstruction of this phantom", source=volume.meta.get("source_file"))
 
 
 def _is_rod(obj) -> bool:
@@ -293,7 +310,8 @@ def locate(volume: Volume, phantom: Phantom) -> Layout:
     Raises
     ------
     InputError
-        Malformed ``analysis.locate`` options in the definition.
+        Malformed ``analysis.locate`` options in the definition, or no test object
+        inside the volume and no pose from the beads.
     """
     opts, per = read_options(phantom)
     beads = phantom.with_role("bead")
@@ -316,6 +334,7 @@ def locate(volume: Volume, phantom: Phantom) -> Layout:
         found = _search_beads(volume, phantom, beads, pose, z_guess, opts, per, confirmed)
         fitted, use, rejected = _fit(beads, found, pose, opts)
     if fitted is None:
+        _require_overlap(volume, phantom)
         found = _search_beads(volume, phantom, beads, Pose(), 0.0, opts, per)
         n_found = sum(f is not None for f, _ in found.values())
         if len(beads) < 2:

@@ -224,9 +224,9 @@ def match_beads(nominal_xyz_mm, candidates_xyz_mm, *, strengths=None, rods=None,
     cand = np.asarray(candidates_xyz_mm, dtype=float).reshape(-1, 3)
     n, m = len(nom), len(cand)
     rods = np.zeros(n, bool) if rods is None else np.asarray(rods, bool)
-    weight = np.ones(m) if strengths is None else np.asarray(strengths, float) / np.max(strengths)
     if n < 2 or m < 2:
         return None
+    weight = np.ones(m) if strengths is None else np.asarray(strengths, float) / np.max(strengths)
     ii, kk = np.triu_indices(n, 1)
     aa, bb = np.nonzero(~np.eye(m, dtype=bool))
     best = {}

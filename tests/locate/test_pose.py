@@ -111,3 +111,5 @@ def test_two_beads_cannot_tell_a_mirror_image():
 
 def test_no_match_from_fewer_than_two_candidates():
     assert match_beads(BEADS, BEADS[:1]) is None
+    # none at all (a blank volume), with the strengths of none
+    assert match_beads(BEADS, np.empty((0, 3)), strengths=np.empty(0)) is None
