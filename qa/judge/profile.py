@@ -59,6 +59,8 @@ class Profile:
     geometries: tuple[str, ...]
     limits: tuple[Limit, ...]
     source: str = ""
+    phantoms_line: int = 0             # lines of applies_to.phantoms / .geometries
+    geometries_line: int = 0
 
     def limit_for(self, metric: str) -> Limit | None:
         for limit in self.limits:
@@ -70,13 +72,52 @@ class Profile:
         return None
 
     def check_applies(self, *, phantom: str, geometry: str | None = None) -> None:
+        """Refuse a phantom or an acquisition geometry outside the profile's scope.
+
+        Parameters
+        ----------
+        phantom : str
+            The phantom's name (``phantom:`` of its definition).
+        geometry : str, optional
+            The name of the geometry profile the volume was acquired with (simulated
+            volumes carry it in their metadata). ``None`` or ``""`` when it is unknown,
+            as for a scanner's DICOM: the geometry is then not checked (see
+            :meth:`geometry_note`).
+
+        Raises
+        ------
+        InputError
+            The profile names phantoms (geometries) and this one is not among them; the
+            message names the profile file and the ``applies_to`` field.
+        """
         if self.phantoms and phantom not in self.phantoms:
             raise InputError(f"profile '{self.name}' is for phantom(s) {', '.join(self.phantoms)}, "
-                             f"not '{phantom}'", source=self.source, field="applies_to.phantoms")
+                             f"not '{phantom}'", source=self.source,
+                             line=self.phantoms_line or None, field="applies_to.phantoms")
         if geometry and self.geometries and geometry not in self.geometries:
             raise InputError(f"profile '{self.name}' is for geometr(ies) "
                              f"{', '.join(self.geometries)}, not '{geometry}'",
-                             source=self.source, field="applies_to.geometries")
+                             source=self.source, line=self.geometries_line or None,
+                             field="applies_to.geometries")
+
+    def geometry_note(self, geometry: str | None) -> str:
+        """A note for the user when the profile's geometries could not be checked.
+
+        Parameters
+        ----------
+        geometry : str or None
+            The volume's geometry name, ``None`` or ``""`` when unknown.
+
+        Returns
+        -------
+        str
+            Empty when the profile names no geometries or ``geometry`` is known;
+            otherwise one sentence saying the scope was not checked.
+        """
+        if not self.geometries or geometry:
+            return ""
+        return (f"the volume does not state its acquisition geometry, so the scope of "
+                f"profile '{self.name}' ({', '.join(self.geometries)}) was not checked")
 
 
 def _levels(f: Fields, key: str, better: str, kind: str) -> tuple[Levels, str]:
@@ -156,9 +197,12 @@ def load_profile(path) -> Profile:
         if f.has("constancy"):
             constancy, constancy_as = _levels(f, "constancy", spec.better, "constancy")
         if acceptance is None and constancy is None:
-            raise f.error(None, f"metric '{key}' needs an 'acceptance' or a 'constancy' limit")
+            raise InputError(f"metric '{key}' needs an 'acceptance' or a 'constancy' limit",
+                             source=str(path), line=lines.get(key), field=f"limits.{key}")
         f.reject_unknown()
         limits.append(Limit(str(key), unit, spec.better, source, acceptance, constancy,
                             constancy_as, lines.get(key, 0)))
     doc.reject_unknown()
-    return Profile(name, description, phantoms, geometries, tuple(limits), str(path))
+    return Profile(name, description, phantoms, geometries, tuple(limits), str(path),
+                   phantoms_line=(applies.line("phantoms") or 0) if phantoms else 0,
+                   geometries_line=(applies.line("geometries") or 0) if geometries else 0)
