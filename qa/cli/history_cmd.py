@@ -9,6 +9,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import InputError
+from ..fileio import check_writable
 from ..history import DEFAULT_FILE_NAME, History
 
 DEFAULT_DB = Path("output") / DEFAULT_FILE_NAME
@@ -73,6 +74,8 @@ def add_parser(sub) -> None:
 
 
 def run(args) -> int:
+    if args.csv:
+        check_writable(args.csv, field="--csv")  # before the table is printed
     with open_history(args.db) as h:
         if args.unit is not None:
             check_unit(h, args.unit)
@@ -86,12 +89,13 @@ def run(args) -> int:
         rows = [(s.id, s.acquired[:16], s.unit_id, s.phantom, s.kind, s.profile, s.overall,
                  s.unit_info.get("software", "—"), s.n_measurements,
                  ", ".join(member.get(s.id, [])) or "—") for s in sessions]
+        # The CSV is written before anything is printed, so a failure gives one line.
+        csv = h.export_csv(args.csv, unit_id=args.unit) if args.csv else None
         if rows:
             print_table(("id", "acquired", "unit", "phantom", "kind", "profile", "overall",
                          "software", "figures", "baseline"), rows)
         units = sorted({s.unit_id for s in sessions})
         print(f"{len(sessions)} session(s) of {len(units)} unit(s) in {h.path}")
-        if args.csv:
-            out = h.export_csv(args.csv, unit_id=args.unit)
-            print(f"csv: {out}")
+        if csv is not None:
+            print(f"csv: {csv}")
     return 0

@@ -5,7 +5,7 @@ from __future__ import annotations
 import datetime as dt
 from pathlib import Path
 
-from ..fileio import write_bytes_atomic
+from ..fileio import check_writable, write_files_atomic
 from ..history.trends import OUTSIDE_ACTION, unit_trends
 from ..judge import load_profile
 from ..session import safe_unit_id
@@ -53,15 +53,16 @@ def run(args) -> int:
     profile = None
     if args.limits is not None:
         profile = load_profile(existing_file(args.limits, "limit profile"))
+    today = dt.date.today().isoformat()
+    out = check_writable(Path(args.out) / f"{today}_{safe_unit_id(args.unit)}_trend.pdf",
+                         field="--out")
     with open_history(args.db) as h:
         check_unit(h, args.unit)
         trends = unit_trends(h, args.unit, phantom=args.phantom, metrics=args.metric,
                              profile=profile)
     if profile is not None:
         profile.check_applies(phantom=trends.phantom)
-    today = dt.date.today().isoformat()
-    out = Path(args.out) / f"{today}_{safe_unit_id(args.unit)}_trend.pdf"
-    write_bytes_atomic(out, render_trend_pdf(trends, created=today))
+    write_files_atomic([(out, render_trend_pdf(trends, created=today), "--out")])
     print(f"Lacuna trends · unit {trends.unit_id} · phantom {trends.phantom} · "
           f"{trends.n_sessions} sessions · profile {trends.profile or '(none)'}")
     for t in trends.metrics:
