@@ -94,6 +94,16 @@ def measure_volume(volume: Volume, phantom: Phantom, *, layout: Layout | None = 
     return layout, tuple(results)
 
 
+def volume_geometry(meta: Mapping) -> str | None:
+    """The name of the geometry profile a volume was acquired with, or ``None``.
+
+    Simulated volumes carry it as ``meta["geometry"]``; a scanner's DICOM does not
+    state it.
+    """
+    value = meta.get("geometry")
+    return str(value) if value not in (None, "") else None
+
+
 def session_date(meta: Mapping, override: str | None = None) -> str:
     """The session's date: ``override``, else the acquisition date in the header, else today."""
     for value in (override, meta.get("acquired")):
@@ -109,7 +119,14 @@ def session_date(meta: Mapping, override: str | None = None) -> str:
 def judge_session(volume: Volume, phantom: Phantom, profile: Profile, *, unit_id: str,
                   baselines: Mapping[str, float] | None = None, date: str | None = None,
                   kind: str = "routine", measured=None) -> SessionResult:
-    """Measure (unless ``measured`` = (layout, results) is given) and judge one volume."""
+    """Measure (unless ``measured`` = (layout, results) is given) and judge one volume.
+
+    The profile's scope is checked first: a phantom, or a geometry named in the volume's
+    metadata (simulated volumes carry ``geometry``), outside the profile's
+    ``applies_to`` is refused with an :class:`~qa.errors.InputError` before anything is
+    measured. A volume that does not name its geometry is judged without that check.
+    """
+    profile.check_applies(phantom=phantom.name, geometry=volume_geometry(volume.meta))
     layout, results = measured or measure_volume(volume, phantom)
     figures = [m for r in results for m in r.measurements]
     judged = judge_all(figures, profile, baselines)

@@ -5,6 +5,7 @@ from __future__ import annotations
 from ..judge import load_profile
 from ..phantom import load_phantom
 from ..publish import assess_file
+from ..session import volume_geometry
 from .common import add_output_options, existing_file, history_path, print_summary
 
 
@@ -37,4 +38,7 @@ def run(args) -> int:
                               json_path=args.json, history_path=history_path(args),
                               date=args.date, kind=args.kind)
     print_summary(result, out.report, out.json)
+    note = profile.geometry_note(volume_geometry(result.meta))
+    if note:
+        print(f"note:    {note}")
     return result.exit_code

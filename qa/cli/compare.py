@@ -8,7 +8,7 @@ from pathlib import Path
 
 from ..compare import METHODS, compare_figures, compare_sessions
 from ..errors import InputError
-from ..fileio import write_bytes_atomic, write_text_atomic
+from ..fileio import check_writable, write_files_atomic
 from ..judge import load_profile
 from ..session import safe_unit_id
 from .common import existing_file
@@ -46,27 +46,47 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
-def _volume_figures(files: str, phantom, option: str):
-    """Measure each volume of a comma-separated list; returns (figures, dates, software)."""
+def _read_volumes(files: str, phantom, option: str, profile=None):
+    """Read each volume of a comma-separated list and check it against the profile.
+
+    A volume whose geometry (named in its metadata) lies outside the profile's scope is
+    refused here, before any volume is measured. Returns ``(names, volumes, notes)``;
+    ``notes`` says when a volume does not name its geometry.
+    """
     from ..io import read_volume
-    from ..session import measure_volume
+    from ..session import volume_geometry
 
     names = [f.strip() for f in files.split(",") if f.strip()]
     if not names:
         raise InputError(f"expected volume files separated by commas, got {files!r}",
                          field=option)
-    figures, dates, software = [], [], []
+    volumes, notes = [], []
     for name in names:
         volume = read_volume(existing_file(name, "volume"))
+        if profile is not None:
+            geometry = volume_geometry(volume.meta)
+            profile.check_applies(phantom=phantom.name, geometry=geometry)
+            notes.append(profile.geometry_note(geometry))
+        volumes.append(volume)
+    return names, volumes, [n for n in notes if n]
+
+
+def _volume_figures(volumes, phantom):
+    """Measure each volume; returns (figures, dates, software)."""
+    from ..session import measure_volume
+
+    figures, dates, software = [], [], []
+    for volume in volumes:
         _, results = measure_volume(volume, phantom)
         figures.append({m.name: m for r in results for m in r.measurements})
         dates.append(str(volume.meta.get("acquired", "")))
         if volume.meta.get("software"):
             software.append(str(volume.meta["software"]))
-    return names, figures, dates, tuple(dict.fromkeys(software))
+    return figures, dates, tuple(dict.fromkeys(software))
 
 
 def _comparison(args, profile):
+    """The comparison the options ask for, and any notes for the user."""
     by_ids = args.before is not None or args.after is not None
     by_volumes = args.before_volumes is not None or args.after_volumes is not None
     if by_ids == by_volumes:
@@ -79,7 +99,7 @@ def _comparison(args, profile):
         with open_history(args.db) as h:
             check_unit(h, args.unit)
             return compare_sessions(h, args.unit, before, after, profile=profile,
-                                    method=args.method)
+                                    method=args.method), ()
     if args.before_volumes is None or args.after_volumes is None:
         raise InputError("give both --before-volumes and --after-volumes",
                          field="--before-volumes")
@@ -91,12 +111,14 @@ def _comparison(args, profile):
     phantom = load_phantom(existing_file(args.phantom, "phantom definition"))
     if profile is not None:
         profile.check_applies(phantom=phantom.name)
-    bn, bf, bd, bs = _volume_figures(args.before_volumes, phantom, "--before-volumes")
-    an, af, ad, as_ = _volume_figures(args.after_volumes, phantom, "--after-volumes")
+    bn, bv, b_notes = _read_volumes(args.before_volumes, phantom, "--before-volumes", profile)
+    an, av, a_notes = _read_volumes(args.after_volumes, phantom, "--after-volumes", profile)
+    bf, bd, bs = _volume_figures(bv, phantom)
+    af, ad, as_ = _volume_figures(av, phantom)
     return compare_figures(safe_unit_id(args.unit), phantom.name, bf, af, before_ids=bn,
                            after_ids=an, profile=profile, method=args.method,
                            before_dates=bd, after_dates=ad, before_software=bs,
-                           after_software=as_)
+                           after_software=as_), tuple(dict.fromkeys(b_notes + a_notes))
 
 
 def _g(v) -> str:
@@ -109,10 +131,20 @@ def run(args) -> int:
     profile = None
     if args.limits is not None:
         profile = load_profile(existing_file(args.limits, "limit profile"))
-    c = _comparison(args, profile)
     today = dt.date.today().isoformat()
-    out = Path(args.out) / f"{today}_{safe_unit_id(c.unit_id)}_compare.pdf"
-    write_bytes_atomic(out, render_comparison_pdf(c, created=today))
+    # Both outputs are checked before the work and written together afterwards: a
+    # failure leaves neither the PDF nor the JSON behind.
+    out = check_writable(Path(args.out) / f"{today}_{safe_unit_id(args.unit)}_compare.pdf",
+                         field="--out")
+    if args.json:
+        check_writable(args.json, field="--json")
+    c, notes = _comparison(args, profile)
+    outputs = [(out, render_comparison_pdf(c, created=today), "--out")]
+    if args.json:
+        text = json.dumps(dict(c.to_json(), report=str(out)), indent=2,
+                          ensure_ascii=False) + "\n"
+        outputs.append((Path(args.json), text.encode("utf-8"), "--json"))
+    write_files_atomic(outputs)
     print(f"Lacuna comparison · unit {c.unit_id} · phantom {c.phantom} · profile "
           f"{c.profile or '(none)'}")
     print(f"before: {', '.join(map(str, c.before_ids))}"
@@ -134,7 +166,7 @@ def run(args) -> int:
     print(f"overall: {c.overall}")
     print(f"log:     {out}")
     if args.json:
-        path = write_text_atomic(args.json, json.dumps(dict(c.to_json(), report=str(out)),
-                                                       indent=2, ensure_ascii=False) + "\n")
-        print(f"json:    {path}")
+        print(f"json:    {args.json}")
+    for note in notes:
+        print(f"note:    {note}")
     return c.exit_code

@@ -3,7 +3,8 @@
 The scenario is invented (see :mod:`qa.scenario`): the Fenmoor Breast Screening Service
 checks its unit FEN-DBT-1 monthly with Lacuna's digital phantom "Tern". On a history
 without that unit, the demo first fills in the eleven previous monthly checks (a
-baseline is set from the first three), then runs today's check and writes its log.
+baseline is set from the first four, :data:`qa.scenario.BASELINE_MONTHS`), then runs
+today's check and writes its log.
 """
 
 from __future__ import annotations
@@ -75,6 +76,7 @@ def run(args) -> int:
     phantom = load_phantom(PHANTOM)
     geometry = load_geometry(GEOMETRY)
     profile = load_profile(PROFILE)
+    profile.check_applies(phantom=phantom.name, geometry=geometry.name)
     grid = grid_for(phantom, geometry)
     unit = UNIT["serial"]
     checks = year_of_checks(dt.date.today(), seed=args.seed)

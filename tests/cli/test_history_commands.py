@@ -225,3 +225,37 @@ def test_compare_volumes(files, capsys, monkeypatch):
                        names[0], "--after-volumes", names[1], "--out", files["out"])
     assert code == 2
     one_line_error(err, "--phantom")
+
+
+def test_outputs_that_cannot_be_written_exit_2_and_leave_nothing(files, capsys):
+    # A regular file where a folder should be, and a folder where a file should be.
+    blocker = files["tmp"] / "a-file"
+    blocker.write_text("not a folder\n")
+    folder = files["tmp"] / "a-folder"
+    folder.mkdir()
+    out = files["tmp"] / "fresh-out"
+    compare = ("compare", "--db", files["db"], "--unit", "FEN-DBT-1", "--before", "1,2,3",
+               "--after", "4,5,6", "--limits", files["limits"])
+    cases = [
+        (("trend", "--db", files["db"], "--unit", "FEN-DBT-1", "--out", blocker / "sub"),
+         ("field '--out'", "a-file is a file, not a folder")),
+        (compare + ("--out", out, "--json", blocker / "c.json"),
+         ("c.json", "field '--json'", "a-file is a file, not a folder")),
+        (compare + ("--out", out, "--json", folder),
+         ("a-folder", "field '--json'", "is a folder; expected the name of a file")),
+        (compare + ("--out", blocker, "--json", files["tmp"] / "c.json"),
+         ("field '--out'", "a-file is a file, not a folder")),
+        (("history", "--db", files["db"], "--csv", blocker / "h.csv"),
+         ("h.csv", "field '--csv'", "a-file is a file, not a folder")),
+        (("history", "--db", files["db"], "--csv", folder),
+         ("field '--csv'", "is a folder")),
+    ]
+    for argv, needles in cases:
+        code, text, err = run(capsys, *argv)
+        assert code == 2, (argv, text, err)
+        assert text == "", (argv, text)   # nothing printed before the error
+        one_line_error(err, *needles)
+    # nothing half-written: no PDF without its JSON, no output folder, no temporary file
+    assert not out.exists() and not (files["tmp"] / "c.json").exists()
+    assert list(folder.iterdir()) == [] and blocker.read_text() == "not a folder\n"
+    assert not list(files["tmp"].glob(".*.part"))
