@@ -184,10 +184,11 @@ class MetricComparison:
     @property
     def mark(self) -> str:
         """A verdict word for the log's marks: the constancy verdict when there is one,
-        else ``not measured`` when the interval is not computable, else ``pass``."""
+        else ``not measured`` when the interval is not computable, else ``no limit``
+        (compared, but no constancy limit to judge the change by: no pass)."""
         if self.constancy:
             return self.constancy
-        return "not measured" if self.interval is None else "pass"
+        return "not measured" if self.interval is None else "no limit"
 
 
 def _words(limit: Limit | None, d: float, beyond: bool, constancy: str) -> str:
@@ -319,7 +320,8 @@ class Comparison:
             "ci_low": None if m.interval is None else num(m.interval[0]),
             "ci_high": None if m.interval is None else num(m.interval[1]),
             "df": num(m.df), "interval": m.interval_method, "beyond_noise": m.beyond_noise,
-            "constancy": m.constancy or None, "limit": m.limit_text, "verdict": m.verdict,
+            "constancy": m.constancy or None, "limit": m.limit_text or None,
+            "judged": bool(m.constancy), "verdict": m.verdict,
             "note": m.note} for m in self.metrics}
         return out
 

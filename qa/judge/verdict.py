@@ -6,6 +6,10 @@ its change from the unit's baseline, in the worse direction for ``higher``/``low
 metrics and either way for ``band`` metrics. The verdict of a metric is the worse of
 the two. A metric with a limit that could not be measured makes the overall verdict at
 least ``warning``: somebody has to look at why.
+
+A measured figure that no level was applied to (no limit in the profile, or only a
+constancy limit and no baseline) keeps the verdict ``pass`` for the JSON contract, but
+its :attr:`Judged.judged` is False and the log reports it as such, never as a pass.
 """
 
 from __future__ import annotations
@@ -31,6 +35,16 @@ class Judged:
     baseline: float | None = None
     change: float | None = None        # value - baseline, in the metric's unit
     reason: str = ""
+    judged: bool = True                # False when no level was applied to the value
+
+    @property
+    def shown(self) -> str:
+        """The verdict as the log words it: the verdict itself when a level was applied
+        or the figure is missing, else ``no limit`` (none in the profile) or
+        ``not judged`` (only a constancy limit, and no baseline)."""
+        if self.judged or self.verdict == "not measured":
+            return self.verdict
+        return "no limit" if self.limit is None else "not judged"
 
     @property
     def name(self) -> str:
@@ -95,11 +109,11 @@ def judge(measurement: Measurement, limit: Limit | None,
     if not measurement.measured:
         text = " · ".join(t for t in (acceptance_text(limit), constancy_text(limit)) if t) \
             if limit else ""
-        return Judged(measurement, "not measured", limit, text, baseline)
+        return Judged(measurement, "not measured", limit, text, baseline, judged=False)
     if limit is None:
         return Judged(measurement, "pass", None, "no limit set", baseline,
                       None if baseline is None else measurement.value - baseline,
-                      "no limit in the profile")
+                      "no limit in the profile", judged=False)
     verdicts, texts, reason = [], [], ""
     if limit.acceptance is not None:
         verdicts.append(_acceptance_verdict(limit, measurement.value))
@@ -113,7 +127,8 @@ def judge(measurement: Measurement, limit: Limit | None,
             verdicts.append(v)
     verdict = max(verdicts, key=_RANK.get) if verdicts else "pass"
     change = None if baseline is None else measurement.value - baseline
-    return Judged(measurement, verdict, limit, " · ".join(texts), baseline, change, reason)
+    return Judged(measurement, verdict, limit, " · ".join(texts), baseline, change, reason,
+                  judged=bool(verdicts))
 
 
 def judge_all(measurements, profile: Profile,

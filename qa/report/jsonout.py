@@ -5,10 +5,14 @@ The contract (``README.md``, "Results as JSON")::
     {"unit": str, "date": "YYYY-MM-DD", "profile": str, "overall": "pass|warning|fail",
      "report": "<path of the PDF>",
      "metrics": {NAME: {"value": float|null, "unit": str, "uncertainty": float|null,
-                        "verdict": "pass|warning|fail|not measured", "note": str}}}
+                        "verdict": "pass|warning|fail|not measured", "note": str,
+                        "limit": str|null, "judged": bool}}}
 
-Further keys (phantom, tool version, analysis time, limits, baselines) may be added;
-the ones above keep their names and meaning.
+``judged`` is false when no level was applied to the value (not measured, no limit in
+the profile, or only a constancy limit and no baseline): its ``pass`` is then no
+verdict. ``limit`` is the profile's limit as text, ``null`` without one. Further keys
+(phantom, tool version, analysis time, baselines) may be added; the ones above keep their
+names and meaning.
 """
 
 from __future__ import annotations
@@ -33,8 +37,9 @@ def session_json(result: SessionResult, report_path: str | None) -> dict:
             note = f"{note}; {j.reason}" if note else j.reason
         metrics[m.name] = {"value": _num(m.value), "unit": m.unit,
                            "uncertainty": _num(m.uncertainty), "verdict": j.verdict,
-                           "note": note, "limit": j.limit_text,
-                           "baseline": _num(j.baseline)}
+                           "note": note,
+                           "limit": j.limit_text if j.limit is not None else None,
+                           "judged": j.judged, "baseline": _num(j.baseline)}
     return {"unit": result.unit_id, "date": result.date, "profile": result.profile.name,
             "overall": result.overall, "report": None if report_path is None else str(report_path),
             "phantom": result.phantom.name, "tool_version": result.tool_version,
