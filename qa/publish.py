@@ -1,9 +1,10 @@
 """Writing a judged session out: PDF log, JSON results and the history, all or nothing.
 
-The log and the JSON are rendered in memory and written atomically; the session is then
-recorded in the history in one transaction. If recording fails, the two files just
-written are removed again, so a failed run leaves neither a log without a history entry
-nor a history entry without its log.
+The log and the JSON are rendered in memory and written atomically (the log under the
+first free name of :func:`~qa.report.pdf.log_name`, never over an earlier log); the
+session is then recorded in the history in one transaction. If recording fails, the two
+files just written are removed again, so a failed run leaves neither a log without a
+history entry nor a history entry without its log.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ from .fileio import write_bytes_atomic
 from .history import History
 from .history.records import MeasurementRecord, SessionRecord, unit_info_from
 from .report.jsonout import session_json
-from .report.pdf import log_name, render_pdf
+from .report.pdf import render_pdf, write_pdf
 from .session import SessionResult
 
 
@@ -64,12 +65,12 @@ def history_pages(history_path, result: SessionResult, profile) -> list:
 def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_path=None,
             extra_pages=()) -> Published:
     """Write the log (and JSON) and record the session; see the module's notes."""
-    out_dir = Path(out_dir)
-    report = out_dir / log_name(result)
     pdf = render_pdf(result, volume, extra_pages=extra_pages)
-    text = json.dumps(session_json(result, str(report)), indent=2, ensure_ascii=False) + "\n"
-    written = [write_bytes_atomic(report, pdf)]
+    report = write_pdf(result, out_dir, pdf=pdf)
+    written = [report]
     try:
+        text = json.dumps(session_json(result, str(report)), indent=2,
+                          ensure_ascii=False) + "\n"
         if json_path is not None:
             written.append(write_bytes_atomic(json_path, text.encode("utf-8")))
         session_id = None

@@ -13,6 +13,7 @@ from reportlab.platypus import PageBreak, Paragraph, Spacer
 
 from ..compare import Comparison, MetricComparison
 from .figures import PALETTE, new_figure
+from .numbers import UNIT_TEXT, fixed, relative_limit, significant
 from .style import pdf_text, styles, verdict_mark
 from .trends import data_table, figure_image, standalone_pdf
 
@@ -23,13 +24,24 @@ _MARKS = {"pass": ("o", PALETTE[2]), "warning": ("^", "#8a5a12"), "fail": ("X", 
 
 
 def _num(v) -> str:
-    return "—" if v is None else f"{v:.4g}"
+    return significant(v)
 
 
 def _mean_sd(values, mean, sd) -> str:
     if not values:
         return "—"
-    return _num(mean) + ("" if sd is None else f" ± {sd:.3g}")
+    return _num(mean) + ("" if sd is None else f" ± {significant(sd, 2)}")
+
+
+def _difference(m: MetricComparison) -> str:
+    """The difference with its interval, and in per cent of the mean before when the
+    constancy limit is relative (the limit's own terms)."""
+    text = _num(m.difference)
+    if m.interval is not None:
+        text += f" [{_num(m.interval[0])}, {_num(m.interval[1])}]"
+    if relative_limit(m.limit) and m.difference is not None and m.mean_before:
+        text += f" = {fixed(100.0 * m.difference / abs(m.mean_before), 1, sign=True)} %"
+    return text
 
 
 def _action_step(m: MetricComparison) -> float | None:
@@ -113,22 +125,25 @@ def comparison_page(comparison: Comparison, *, new_page: bool = True) -> list:
         "interval (B. L. Welch, Biometrika 1947; degrees of freedom after F. E. Satterthwaite, 1946) does not "
         "assume equal spread on both sides; a percentile bootstrap (Efron & Tibshirani, "
         "1993) is named where used. 'Beyond noise': the interval excludes 0. The "
-        "constancy verdict compares the mean after with the mean before as baseline."),
+        "constancy verdict compares the mean after with the mean before as baseline; "
+        "where the constancy limit is relative, the difference is also given in per cent "
+        "of the mean before. 'no limit': compared, but the profile sets no constancy "
+        "limit to judge the change by (a grey ring; no pass)."),
         st["small"]))
     out.append(Spacer(1, 2 * mm))
     rows = [("Metric", "n", "Before mean ± sd", "After mean ± sd",
              "Difference [interval]", "Beyond noise", "Constancy limit", "", "Verdict")]
     for m in c.metrics:
-        diff = _num(m.difference)
-        if m.interval is not None:
-            diff += f" [{m.interval[0]:.4g}, {m.interval[1]:.4g}]"
+        diff = _difference(m)
         noise = "—" if m.beyond_noise is None else ("yes" if m.beyond_noise else "no")
-        name = Paragraph(f"{pdf_text(m.metric)}<br/>({pdf_text(m.unit)})", st["cell"])
+        unit = UNIT_TEXT.get(m.unit, f"({m.unit})")
+        name = Paragraph(pdf_text(m.metric) + (f"<br/>{pdf_text(unit)}" if unit else ""),
+                         st["cell"])
         rows.append((name, f"{len(m.before)} / {len(m.after)}",
                      _mean_sd(m.before, m.mean_before, m.sd_before),
                      _mean_sd(m.after, m.mean_after, m.sd_after), diff, noise,
                      m.limit_text or "—", verdict_mark(m.mark), m.verdict))
-    out.append(data_table(rows, (29, 10, 19, 19, 27, 15, 26, 5, 24), st))
+    out.append(data_table(rows, (33, 8, 20, 20, 30, 11, 24, 4.5, 23.5), st))
     for m in c.metrics:
         if m.note:
             out.append(Paragraph(pdf_text(f"{m.metric}: {m.note}"), st["small"]))

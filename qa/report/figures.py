@@ -21,3 +21,29 @@ def new_figure(width_in: float = 5.6, height_in: float = 2.8, *, ncols: int = 1)
         ax.xaxis.label.set_size(8)
         ax.yaxis.label.set_size(8)
     return fig, (axes[0] if ncols == 1 else axes)
+
+
+#: Resolution of the raster parts of a figure (images drawn with ``imshow``); lines and
+#: text stay vectors.
+IMAGE_DPI = 200
+
+
+def figure_drawing(fig, width_mm: float):
+    """A matplotlib Figure as a reportlab Drawing ``width_mm`` wide, kept as vectors.
+
+    The figure goes through SVG (text as outlines, so the log needs no plot fonts) and
+    svglib; images inside it are embedded at :data:`IMAGE_DPI`.
+    """
+    import io
+
+    from reportlab.lib.units import mm
+    from svglib.svglib import svg2rlg
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="svg", dpi=IMAGE_DPI)
+    buf.seek(0)
+    drawing = svg2rlg(buf)
+    scale = width_mm * mm / drawing.width
+    drawing.scale(scale, scale)
+    drawing.width, drawing.height = drawing.width * scale, drawing.height * scale
+    return drawing

@@ -46,6 +46,8 @@ RULE = colors.HexColor("#9aa5b1")
 SHADE = colors.HexColor("#eef1f4")
 VERDICT_COLOURS = {"pass": colors.HexColor("#588157"), "warning": colors.HexColor("#b7791f"),
                    "fail": colors.HexColor("#b23a2a"), "not measured": colors.HexColor("#5c677d")}
+#: The neutral grey of figures reported without a verdict ("no limit", "not judged").
+NEUTRAL = colors.HexColor("#8d99ae")
 
 
 def styles() -> dict[str, ParagraphStyle]:
@@ -55,10 +57,15 @@ def styles() -> dict[str, ParagraphStyle]:
         "body": base,
         "small": ParagraphStyle("small", parent=base, fontSize=7, leading=9),
         "cell": ParagraphStyle("cell", parent=base, fontSize=7.2, leading=8.8),
+        # numbers and names: broken at spaces only, never inside a number
+        "num": ParagraphStyle("num", parent=base, fontSize=7.2, leading=8.8,
+                              splitLongWords=0),
         "title": ParagraphStyle("title", parent=base, fontName=FONT_BOLD, fontSize=15,
                                 leading=18, textColor=ACCENT),
         "h2": ParagraphStyle("h2", parent=base, fontName=FONT_BOLD, fontSize=10.5, leading=13,
-                             spaceBefore=8, spaceAfter=4, textColor=ACCENT),
+                             spaceBefore=8, spaceAfter=4, textColor=ACCENT, keepWithNext=1),
+        "h3": ParagraphStyle("h3", parent=base, fontName=FONT_BOLD, fontSize=8.5, leading=11,
+                             spaceBefore=4, spaceAfter=2, keepWithNext=1),
         "caution": ParagraphStyle("caution", parent=base, fontSize=8, leading=10.5,
                                   borderColor=RULE, borderWidth=0.6, borderPadding=5,
                                   backColor=SHADE, spaceBefore=4, spaceAfter=8),
@@ -67,11 +74,14 @@ def styles() -> dict[str, ParagraphStyle]:
 
 def verdict_mark(verdict: str, size: float = 7.0) -> Drawing:
     """A small shape for each verdict, so colour is never the only cue: a disc (pass),
-    a triangle (warning), a cross (fail), a short bar (not measured)."""
+    a triangle (warning), a cross (fail), a short bar (not measured), a grey ring (a
+    figure reported without a verdict: "no limit", "not judged")."""
     d = Drawing(size, size)
-    c = VERDICT_COLOURS.get(verdict, INK)
+    c = VERDICT_COLOURS.get(verdict, NEUTRAL)
     s = size
-    if verdict == "pass":
+    if verdict not in VERDICT_COLOURS:
+        d.add(Circle(s / 2, s / 2, s * 0.32, fillColor=None, strokeColor=c, strokeWidth=1.1))
+    elif verdict == "pass":
         d.add(Circle(s / 2, s / 2, s * 0.38, fillColor=c, strokeColor=c))
     elif verdict == "warning":
         d.add(Polygon([s * 0.1, s * 0.12, s * 0.9, s * 0.12, s * 0.5, s * 0.92],

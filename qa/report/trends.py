@@ -1,188 +1,76 @@
-"""Trend pages of the PDF log: a table of flags per metric and one chart per metric.
+"""Trend pages of the PDF log: a table of flags per metric, the latest flagged points and
+the charts (:mod:`qa.report.trend_chart`).
 
 :func:`trend_pages` reads the history and returns reportlab flowables for the log's
-``extra_pages``; :func:`trend_figure` draws one metric (value with its uncertainty bar
-against the date, baseline, warning and action limits, control limits, the EWMA
-statistic, flagged points); :func:`render_trend_pdf` writes the pages as a document of
-their own (``lacuna trend``). Flagged points get a marker shape of their own and a short
-code beside them, and limit kinds differ in line style, so colour is never the only cue.
+``extra_pages``; :func:`render_trend_pdf` writes the pages as a document of their own
+(``lacuna trend``). In the session log the charts are the headline figures (the JSON
+contract's names) and every metric whose latest point is flagged; on their own, every
+metric. They are drawn as small multiples, two to a row, with one shared key.
 """
 
 from __future__ import annotations
 
 import io
-from datetime import date, datetime, timedelta
 from pathlib import Path
 
-from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
 from reportlab.lib import colors
 from reportlab.lib.pagesizes import A4
 from reportlab.lib.units import mm
-from reportlab.platypus import (Image, PageBreak, Paragraph, SimpleDocTemplate, Spacer,
-                                Table, TableStyle)
+from reportlab.platypus import (CondPageBreak, Paragraph, SimpleDocTemplate, Spacer, Table,
+                                TableStyle)
 
 from ..history import History
 from ..history.control import (BEYOND_3, EIGHT_ONE_SIDE, EWMA_BEYOND, EWMA_L, EWMA_LAMBDA,
                                FOUR_OF_FIVE, TWO_OF_THREE)
-from ..history.trends import (FLAGS, OUTSIDE_ACTION, OUTSIDE_WARNING, MetricTrend,
-                              UnitTrends, unit_trends)
-from .figures import PALETTE, new_figure
+from ..history.trends import OUTSIDE_ACTION, OUTSIDE_WARNING, MetricTrend, UnitTrends, unit_trends
+from .figures import figure_drawing
+from .numbers import significant, with_unit
 from .style import ACCENT, RULE, SHADE, pdf_text, styles, verdict_mark
+from .trend_chart import FLAG_CODES, chart_grid, codes, metric_title, trend_figure
 
-#: Short codes printed beside flagged points and in the tables.
-FLAG_CODES = {OUTSIDE_ACTION: "A", OUTSIDE_WARNING: "W", BEYOND_3: "S3", TWO_OF_THREE: "R2",
-              FOUR_OF_FIVE: "R4", EIGHT_ONE_SIDE: "R8", EWMA_BEYOND: "E"}
-#: Marker of a flagged point by its most severe flag: cross, triangle, diamond.
-_MARKS = ((OUTSIDE_ACTION, "X", PALETTE[1]), (OUTSIDE_WARNING, "^", "#8a5a12"),
-          ("control rule", "D", PALETTE[2]))
 _WIDTH_MM = 174.0
 
 __all__ = ["FLAG_CODES", "trend_figure", "trend_flowables", "trend_pages",
-           "render_trend_pdf", "standalone_pdf", "figure_image", "codes", "data_table"]
+           "render_trend_pdf", "standalone_pdf", "figure_image", "codes", "data_table",
+           "headline", "charted"]
+
+#: Headline figures of the JSON contract (README, "Results as JSON"), in its order; per
+#: disk ``sdnr_<id>`` and ``dprime_npw_<id>`` follow.
+HEADLINE = ("mtf50_x", "mtf10_x", "mtf50_y", "mtf10_y", "asf_fwhm", "streak_half_angle")
+_PER_DISK = ("sdnr_", "dprime_npw_")
 
 
-def codes(flags) -> str:
-    """The flags of a point as short codes, e.g. ``"A S3 E"``."""
-    return " ".join(FLAG_CODES[f] for f in FLAGS if f in flags)
+def headline(metric: str) -> bool:
+    """True for the JSON contract's headline figures.
+
+    Examples
+    --------
+    >>> [headline(m) for m in ("mtf10_y", "sdnr_d3", "dprime_npw_d3", "dprime_npwe_d3")]
+    [True, True, True, False]
+    """
+    return metric in HEADLINE or metric.startswith(_PER_DISK)
 
 
-def _when(text: str) -> datetime:
-    if len(text) == 10:
-        d = date.fromisoformat(text)
-        return datetime(d.year, d.month, d.day)
-    return datetime.fromisoformat(text).replace(tzinfo=None)
+def _headline_rank(metric: str) -> int:
+    if metric in HEADLINE:
+        return HEADLINE.index(metric)
+    return len(HEADLINE) + (0 if metric.startswith(_PER_DISK[0]) else 1) \
+        if headline(metric) else 99
 
 
-def _fmt(v) -> str:
-    return "—" if v is None else f"{v:.4g}"
+def charted(trend: MetricTrend) -> bool:
+    """A chart in the session log: a headline figure, or a latest point that is flagged
+    (outside a limit, or a control rule)."""
+    last = trend.latest
+    return headline(trend.metric) or (last is not None and bool(last.flags))
 
 
-def _core_range(trend: MetricTrend) -> tuple[float, float]:
-    """The span of the values (with their bars), baselines, control limits and EWMA."""
-    v = [p.value + s * (p.uncertainty or 0.0) for p in trend.points for s in (-1, 1)]
-    for per in trend.periods:
-        v += [] if per.value is None else [per.value]
-        if per.control is not None:
-            v += list(per.control.zone(3)) + [float(z) for z in per.ewma.z]
-    return min(v), max(v)
+def figure_image(fig, width_mm: float = _WIDTH_MM):
+    """A matplotlib Figure as a reportlab flowable of the given width (vector drawing)."""
+    return figure_drawing(fig, width_mm)
 
 
-def trend_figure(trend: MetricTrend, *, width_in: float = 6.8, height_in: float = 2.35):
-    """The chart of one metric's trend (a matplotlib Figure from :func:`new_figure`)."""
-    fig, ax = new_figure(width_in, height_in)
-    pts = trend.points
-    x = [_when(p.acquired) for p in pts]
-    y = [p.value for p in pts]
-    ax.set_title(f"{trend.metric} ({trend.unit})", fontsize=8, loc="left")
-    ax.set_ylabel(trend.unit)
-    if not pts:
-        ax.text(0.5, 0.5, "no measured values", transform=ax.transAxes, ha="center")
-        return fig
-    span = (max(x) - min(x)) if len(x) > 1 else timedelta(days=1)
-    pad = max(span * 0.02, timedelta(hours=12))
-    lo, hi = _core_range(trend)
-    reach = max(hi - lo, 0.05 * max(abs(lo), abs(hi)), 1e-12)
-    drawn, off = [lo, hi], []
-
-    def visible(line) -> bool:
-        if lo - reach <= line.value <= hi + reach:
-            drawn.append(line.value)
-            return True
-        off.append(f"{line.level} {line.value:.4g} ({line.kind}, "
-                   f"{'below' if line.value < lo else 'above'})")
-        return False
-
-    for line in trend.acceptance:
-        if visible(line):
-            ax.axhline(line.value, ls="--" if line.level == "action" else ":", lw=0.9,
-                       color=PALETTE[1] if line.level == "action" else "#8a5a12",
-                       label=f"{line.level} limit (acceptance)"
-                       if line.side == trend.acceptance[0].side else None)
-    shown = set()
-
-    def once(label):
-        if label in shown:
-            return None
-        shown.add(label)
-        return label
-
-    for k, per in enumerate(trend.periods):
-        x0 = x[per.first] - pad
-        x1 = x[trend.periods[k + 1].first] - pad if k + 1 < len(trend.periods) \
-            else x[per.stop - 1] + pad
-        if per.value is not None:
-            ax.plot([x0, x1], [per.value] * 2, "-", color=PALETTE[4], lw=1.0,
-                    label=once("baseline"))
-        for line in per.constancy:
-            if not visible(line):
-                continue
-            ax.plot([x0, x1], [line.value] * 2, "--" if line.level == "action" else ":",
-                    lw=0.9, color=PALETTE[1] if line.level == "action" else "#8a5a12",
-                    label=once(f"{line.level} limit (constancy)"))
-        if per.control is not None:
-            for v in per.control.zone(3):
-                ax.plot([x0, x1], [v] * 2, "-.", lw=0.8, color=PALETTE[2],
-                        label=once("control limits (3 sigma)"))
-            ax.plot(x[per.first:per.stop], per.ewma.z, "-", lw=0.8, color=PALETTE[0],
-                    alpha=0.45, label=once("EWMA"))
-    with_u = [(xi, p.value, p.uncertainty) for xi, p in zip(x, pts) if p.uncertainty]
-    if with_u:
-        ax.errorbar([w[0] for w in with_u], [w[1] for w in with_u],
-                    yerr=[w[2] for w in with_u], fmt="none", ecolor=PALETTE[0], elinewidth=0.7,
-                    capsize=1.5)
-    plain = [i for i, p in enumerate(pts) if not p.in_baseline]
-    base = [i for i, p in enumerate(pts) if p.in_baseline]
-    ax.plot([x[i] for i in plain], [y[i] for i in plain], "o", ms=3, color=PALETTE[0],
-            label="value ± u (k = 1)")
-    if base:
-        ax.plot([x[i] for i in base], [y[i] for i in base], "o", ms=3.5, mfc="white",
-                color=PALETTE[0], label="baseline session")
-    for name, marker, colour in _MARKS:
-        if name == "control rule":
-            idx = [i for i, p in enumerate(pts) if p.flags and not
-                   ({OUTSIDE_ACTION, OUTSIDE_WARNING} & set(p.flags))]
-        elif name == OUTSIDE_WARNING:
-            idx = [i for i, p in enumerate(pts) if name in p.flags and
-                   OUTSIDE_ACTION not in p.flags]
-        else:
-            idx = [i for i, p in enumerate(pts) if name in p.flags]
-        if idx:
-            ax.plot([x[i] for i in idx], [y[i] for i in idx], marker, ms=6, mfc="none",
-                    mew=1.2, color=colour, ls="none", label=f"flag: {name}")
-    flagged = 0
-    for i, p in enumerate(pts):
-        text = (FLAG_CODES[p.flags[0]] if p.flags else "") + (" now" if p.current else "")
-        if text:  # the most severe code; alternately above and below, against overlaps
-            up = flagged % 2 == 0
-            flagged += bool(p.flags)
-            ax.annotate(text.strip(), (x[i], y[i]), xytext=(3, 4 if up else -9),
-                        textcoords="offset points", fontsize=5.5, color="0.15")
-    if off:
-        ax.set_title(f"{trend.metric} ({trend.unit})\n", fontsize=8, loc="left")
-        ax.text(0.0, 1.02, "off the chart: " + "; ".join(dict.fromkeys(off)),
-                transform=ax.transAxes, fontsize=5.5, color="0.25", va="bottom")
-    margin = 0.08 * (max(drawn) - min(drawn) or reach)
-    ax.set_ylim(min(drawn) - margin, max(drawn) + margin)
-    loc = AutoDateLocator(minticks=3, maxticks=8)
-    ax.xaxis.set_major_locator(loc)
-    ax.xaxis.set_major_formatter(ConciseDateFormatter(loc))
-    ax.set_xlim(min(x) - pad, max(x) + pad)
-    ax.xaxis.get_offset_text().set_fontsize(6.5)
-    fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncol=4,
-               fontsize=5.5, frameon=False, handlelength=2.2)
-    return fig
-
-
-def figure_image(fig, width_mm: float = _WIDTH_MM) -> Image:
-    """A matplotlib Figure as a reportlab Image of the given width."""
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=130)
-    w_in, h_in = fig.get_size_inches()
-    buf.seek(0)
-    return Image(buf, width=width_mm * mm, height=width_mm * mm * h_in / w_in)
-
-
-def data_table(rows, widths, st) -> Table:
+def data_table(rows, widths, st, *, pad: float = 2.5) -> Table:
     """A table of text cells (or flowables) with a bold header row, widths in mm."""
     data = [[Paragraph(f"<b>{pdf_text(h)}</b>", st["small"]) for h in rows[0]]]
     for r in rows[1:]:
@@ -190,6 +78,10 @@ def data_table(rows, widths, st) -> Table:
                      for c in r])
     t = Table(data, colWidths=[w * mm for w in widths], repeatRows=1)
     t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "MIDDLE"),
+                           ("LEFTPADDING", (0, 0), (-1, -1), pad),
+                           ("RIGHTPADDING", (0, 0), (-1, -1), pad),
+                           ("TOPPADDING", (0, 0), (-1, -1), 2),
+                           ("BOTTOMPADDING", (0, 0), (-1, -1), 2),
                            ("LINEBELOW", (0, 0), (-1, 0), 0.8, ACCENT),
                            ("LINEBELOW", (0, 1), (-1, -1), 0.25, RULE),
                            ("ROWBACKGROUNDS", (0, 1), (-1, -1), [colors.white, SHADE])]))
@@ -206,36 +98,50 @@ def _latest_state(trend: MetricTrend) -> str:
 
 
 def _summary_rows(trends: UnitTrends) -> list:
+    newest = max((t.latest.acquired[:10] for t in trends.metrics if t.latest), default="")
     rows = [("Metric", "Points", "Baseline (sd, n)", "Control limits", "A", "W", "Rules",
-             "E", "", "Latest")]
+             "E", "", f"Latest ({newest or 'none'})")]
     for t in trends.metrics:
         per = t.periods[t.latest.period] if t.latest and t.latest.period is not None \
             else None
         base = "none" if per is None or per.value is None else \
-            f"{per.value:.4g} ({_fmt(per.sd)}, {per.n})"
+            f"{significant(per.value)} ({significant(per.sd, 2)}, {per.n})"
         ctl = "—" if per is None or per.control is None else \
-            "{:.4g} – {:.4g}".format(*per.control.zone(3))
+            " – ".join(significant(v) for v in per.control.zone(3))
         rules = sum(any(f in p.flags for f in (BEYOND_3, TWO_OF_THREE, FOUR_OF_FIVE,
                                                EIGHT_ONE_SIDE)) for p in t.points)
         last = t.latest
-        latest = "—" if last is None else (f"{last.acquired[:10]}: {last.value:.4g} "
-                                           f"{codes(last.flags) or 'in control'}")
+        latest = "—" if last is None else (
+            ("" if last.acquired[:10] == newest else f"{last.acquired[:10]}: ")
+            + f"{significant(last.value)} {codes(last.flags) or 'in control'}")
         n = f"{len(t.points)}" + (f" (+{t.not_measured} n.m.)" if t.not_measured else "")
-        rows.append((f"{t.metric} ({t.unit})", n, base, ctl, str(t.count(OUTSIDE_ACTION)),
-                     str(t.count(OUTSIDE_WARNING)), str(rules), str(t.count(EWMA_BEYOND)),
-                     verdict_mark(_latest_state(t)), latest))
+        rows.append((metric_title(t.metric, t.unit), n, base, ctl,
+                     str(t.count(OUTSIDE_ACTION)), str(t.count(OUTSIDE_WARNING)), str(rules),
+                     str(t.count(EWMA_BEYOND)), verdict_mark(_latest_state(t)), latest))
     return rows
 
 
-def _flagged_rows(trends: UnitTrends, most: int) -> list:
-    found = [(p.acquired, t, p) for t in trends.metrics for p in t.flagged()]
-    found.sort(key=lambda r: r[0])
+def flagged_points(trends: UnitTrends, most: int) -> list:
+    """Up to ``most`` flagged points ``(trend, point)``: those of headline figures first,
+    the latest first (on one date in the contract's order), then the latest others."""
+    found = [(t, p) for t in trends.metrics for p in t.flagged()]
+    order = {t.metric: k for k, t in enumerate(trends.metrics)}
+    found.sort(key=lambda r: order[r[0].metric])
+    found.sort(key=lambda r: _headline_rank(r[0].metric))
+    found.sort(key=lambda r: r[1].acquired, reverse=True)
+    found.sort(key=lambda r: not headline(r[0].metric))
+    return found[:most]
+
+
+def _flagged_rows(trends: UnitTrends, most: int) -> tuple[list, int]:
     rows = [("Date", "Session", "Metric", "Value ± u", "Flags (codes above)")]
-    for acquired, t, p in found[-most:]:
-        u = "" if p.uncertainty is None else f" ± {p.uncertainty:.3g}"
-        rows.append((acquired[:16], "now" if p.current else str(p.session_id), t.metric,
-                     f"{p.value:.4g}{u} {t.unit}", codes(p.flags)))
-    return rows if len(rows) > 1 else []
+    shown = flagged_points(trends, most)
+    for t, p in shown:
+        u = "" if p.uncertainty is None else f" ± {significant(p.uncertainty, 2)}"
+        rows.append((p.acquired[:16], "this" if p.current else str(p.session_id),
+                     t.metric, with_unit(f"{significant(p.value)}{u}", t.unit), codes(p.flags)))
+    total = sum(len(t.flagged()) for t in trends.metrics)
+    return (rows if len(rows) > 1 else []), total - len(shown)
 
 
 def _method_text() -> str:
@@ -245,16 +151,17 @@ def _method_text() -> str:
             f"with lambda = {EWMA_LAMBDA:g}, L = {EWMA_L:g} (D. C. Montgomery, Introduction "
             "to Statistical Quality Control, Wiley). Codes: A outside an action limit, W "
             "outside a warning limit, S3 beyond 3 sigma, R2 2 of 3 beyond 2 sigma, R4 4 of "
-            "5 beyond 1 sigma, R8 8 on one side, E EWMA beyond its limit. Points are "
-            "judged against the profile named above; limits drawn dashed (action) and "
-            "dotted (warning), control limits dash-dotted.")
+            "5 beyond 1 sigma, R8 8 on one side, E EWMA beyond its limit; n.m.: sessions "
+            "in which the metric was not measured. Points are judged against the profile "
+            "named above; limits drawn dashed (action) and dotted (warning), control limits "
+            "dash-dotted. Values to four significant digits.")
 
 
 def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
-                    most_flagged: int = 10, charts: str = "all") -> list:
+                    most_flagged: int = 12, charts: str = "all") -> list:
     """The trend pages of :func:`trend_pages` from trends already computed."""
     st = styles()
-    out = [PageBreak()] if new_page else []
+    out = [CondPageBreak(90 * mm)] if new_page else []
     out.append(Paragraph(pdf_text(f"Trends — unit {trends.unit_id}, phantom "
                                   f"{trends.phantom}"), st["h2"]))
     pts = [p for t in trends.metrics for p in t.points]
@@ -277,35 +184,29 @@ def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
                              st["small"]))
     out.append(Paragraph(pdf_text(_method_text()), st["small"]))
     out.append(Spacer(1, 2 * mm))
-    out.append(data_table(_summary_rows(trends), (36, 14, 26, 26, 7, 7, 10, 8, 5, 35), st))
+    out.append(data_table(_summary_rows(trends), (37, 13, 27, 28, 5.5, 5.5, 10, 5.5, 4.5, 38), st))
     notes = [f"{t.metric}: {per.control_note}" for t in trends.metrics for per in t.periods
              if per.control_note] + [f"{t.metric}: {t.note}" for t in trends.metrics if t.note]
     for text in dict.fromkeys(notes):
         out.append(Paragraph(pdf_text(text), st["small"]))
-    flagged = _flagged_rows(trends, most_flagged)
+    flagged, more = _flagged_rows(trends, most_flagged)
     if flagged:
-        out += [Spacer(1, 2 * mm), Paragraph(f"Latest flagged points (up to {most_flagged})",
-                                             st["body"]),
-                data_table(flagged, (28, 16, 44, 40, 46), st)]
-    charted = [t for t in trends.metrics if charts == "all" or _charted(t)]
-    if len(charted) < len(trends.metrics):
-        out.append(Paragraph("Charts follow for the headline figures and for every metric "
-                             "whose latest point is outside a warning or action limit; the "
-                             "table above lists them all.", st["small"]))
-    for t in charted:
-        out.append(Spacer(1, 2 * mm))
-        out.append(figure_image(trend_figure(t)))
+        title = f"Flagged points (up to {most_flagged}: headline figures first, then the " \
+                "latest of the others" + (f"; {more} more are counted above)" if more else ")")
+        out += [Spacer(1, 2 * mm), Paragraph(pdf_text(title), st["h3"]),
+                data_table(flagged, (28, 16, 44, 46, 40), st)]
+    chosen = [t for t in trends.metrics if charts == "all" or charted(t)]
+    chosen.sort(key=lambda t: _headline_rank(t.metric) if headline(t.metric) else 99)
+    text = ("Charts of every metric follow." if len(chosen) == len(trends.metrics) else
+            "Charts follow for the headline figures and for every metric whose latest "
+            "point is flagged; the table above lists them all.")
+    out.append(Paragraph(text + " Dates along the bottom; the square is this session.",
+                         st["small"]))
+    grid = chart_grid(chosen)
+    if grid:
+        out.append(Spacer(1, 1 * mm))
+        out += grid
     return out
-
-
-#: Figures always charted on trend pages (the JSON contract's headline names).
-HEADLINE = ("mtf50_x", "mtf50_y", "asf_fwhm", "streak_half_angle", "noise_sd")
-
-
-def _charted(trend: MetricTrend) -> bool:
-    last = trend.latest
-    outside = last is not None and (OUTSIDE_ACTION in last.flags or OUTSIDE_WARNING in last.flags)
-    return trend.metric in HEADLINE or outside
 
 
 def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, current=None,
@@ -327,16 +228,16 @@ def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, cur
     metrics : sequence of str, optional
         Metrics to chart (default: all measured).
     new_page : bool
-        Start with a page break (default True).
+        Start on a new page unless most of a page is left (default True).
     charts : {"all", "headline"}
         Chart every metric, or only the headline figures and the metrics whose latest
-        point is outside a limit (the session log's choice; the table lists them all).
+        point is flagged (the session log's choice; the table lists them all).
 
     Returns
     -------
     list of flowables
-        A heading, a table of flags per metric, the latest flagged points and one chart
-        per metric. When the history holds no session of the unit and phantom yet, a
+        A heading, a table of flags per metric, the flagged points and the charts
+        (small multiples under one shared key). When the history holds no session of the unit and phantom yet, a
         heading and one line saying so.
 
     Raises
@@ -355,7 +256,7 @@ def trend_pages(history_path, unit_id: str, phantom: str | None, profile, *, cur
                                      profile=profile, current=current)
                 return trend_flowables(trends, new_page=new_page, charts=charts)
     st = styles()
-    out = [PageBreak()] if new_page else []
+    out = [CondPageBreak(90 * mm)] if new_page else []
     return out + [Paragraph(pdf_text(f"Trends — unit {unit_id}"), st["h2"]),
                   Paragraph(pdf_text(f"No earlier session of unit {unit_id}"
                                      + (f" with phantom {phantom}" if phantom else "")
