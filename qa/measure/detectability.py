@@ -335,6 +335,8 @@ def plot(result: FamilyResult) -> Figure | None:
         return None
     c = np.asarray(data["threshold_contrast"], float)
     u = np.asarray(data["threshold_uncertainty"], float)
+    from matplotlib.ticker import NullFormatter
+
     fig = Figure(figsize=(6.0, 4.2), layout="constrained")
     ax = fig.subplots()
     ax.errorbar(d, c, yerr=np.where(np.isfinite(u), 2 * u, 0.0), fmt="o", capsize=3,
@@ -346,6 +348,8 @@ def plot(result: FamilyResult) -> Figure | None:
                 label=f"fit C = {fit['a']:.3g} · d^{fit['b']:.2f}")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    ax.set_xticks(d, [f"{v:g}" for v in d])    # the disks' own diameters, in plain figures
+    ax.xaxis.set_minor_formatter(NullFormatter())
     ax.set_xlabel("disk diameter (mm)")
     ax.set_ylabel("threshold contrast (volume units)")
     ax.set_title(f"Contrast-detail (NPW, d' = {data.get('dprime_target', float('nan')):.3f})")

@@ -116,10 +116,11 @@ def plot(result: FamilyResult):
     curves = {d: c for d, c in curves.items() if c}
     if not curves:
         return None
-    fig, ax = new_figure(5.6, 3.4)
+    fig, ax = new_figure(6.8, 3.4)
     styles = {"x": ("-", "o", PALETTE[0]), "y": ("--", "s", PALETTE[1])}
     marks = [c[k] for c in curves.values() for k in ("mtf50", "mtf10") if c[k] is not None]
     f_top = max([1.25 * c["nyquist_per_mm"] for c in curves.values()] + [1.05 * v for v in marks])
+    row = 0
     for d, c in curves.items():
         line, marker, colour = styles[d]
         f, m = c["frequency_per_mm"], c["mtf"]
@@ -129,11 +130,10 @@ def plot(result: FamilyResult):
             if c[key] is not None:     # the reported figure (mean over edges) and its ±u
                 ax.errorbar([c[key]], [level], xerr=[c[f"{key}_u"] or 0.0], fmt=marker,
                             color=colour, mfc="white", ms=5, capsize=3, lw=1.0)
-                left = c[key] > 0.8 * f_top        # near the right end: label to the left
-                ax.annotate(f"{key.upper()} {d} {c[key]:.2f}", (c[key], level),
-                            textcoords="offset points", ha="right" if left else "left",
-                            xytext=(-6 if left else 6, 4 if d == "x" else -12),
-                            fontsize=7, color=colour)
+                # the figures listed beside the plot, where they cross no curve
+                ax.text(1.03, 0.62 - 0.09 * row, f"{key.upper()} {d} {c[key]:.2f} lp/mm",
+                        transform=ax.transAxes, fontsize=7, color=colour, va="top")
+                row += 1
     for nyq in sorted({round(c["nyquist_per_mm"], 6) for c in curves.values()}):
         ax.axvline(nyq, color=PALETTE[4], lw=0.8, ls=":")
         ax.text(nyq, 0.02, "Nyquist ", fontsize=6, color=PALETTE[4], ha="right")
@@ -141,8 +141,10 @@ def plot(result: FamilyResult):
                 f"{c['zero_peak_frequency_per_mm']:.1f} lp/mm" for d, c in curves.items()
                 if c["edge_enhanced"]]
     if enhanced:
-        ax.text(0.98, 0.75, "\n".join(enhanced), transform=ax.transAxes, ha="right",
-                va="top", fontsize=6, color=PALETTE[4])
+        ax.text(0.0, -0.2, "\n".join(enhanced), transform=ax.transAxes, va="top",
+                fontsize=6, color=PALETTE[4])
+    for level in (0.5, 0.1):
+        ax.axhline(level, color="0.7", lw=0.6, ls=(0, (1, 2)))
     ax.axhline(0.0, color="0.8", lw=0.6)
     ax.set_ylim(-0.02, max(1.1, 1.05 * max(float(np.max(c["mtf"])) for c in curves.values())))
     ax.set_xlim(left=0.0)
@@ -152,7 +154,7 @@ def plot(result: FamilyResult):
     z = result.plot_data.get("focus_z_mm") or {}
     ax.set_title("In-plane MTF" + (f", plane z = {min(z.values()):.1f} mm" if len(z) == 1
                                    else ""), fontsize=9, loc="left")
-    ax.legend(frameon=False, fontsize=7, loc="upper right")
+    ax.legend(frameon=False, fontsize=7, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     return fig
 
 

@@ -307,8 +307,8 @@ def plot(result: FamilyResult) -> Figure | None:
             ax_nps.plot(cut["freq_per_mm"], cut["nps"], style, label=f"along {axis}")
         ax_nps.set_yscale("log")
         ax_nps.legend()
-    ax_nps.set_xlabel("spatial frequency (cycles/mm)")
-    ax_nps.set_ylabel("NPS (value² · mm²)")
+    ax_nps.set_xlabel("spatial frequency (lp/mm)")
+    ax_nps.set_ylabel("NPS ((volume units)² · mm²)")
     ax_nps.set_title(f"NPS, plane z = {data.get('plane_z_mm', float('nan')):.1f} mm")
     if has_grid:
         dev = data["uniformity_deviation_percent"]
