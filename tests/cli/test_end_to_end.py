@@ -50,7 +50,11 @@ def test_json_follows_the_contract(demo):
     assert any(k.startswith("sdnr_") for k in d["metrics"])
     assert any(k.startswith("dprime_npw_") for k in d["metrics"])
     for name, m in d["metrics"].items():
-        assert set(m) >= {"value", "unit", "uncertainty", "verdict", "note"}
+        assert set(m) >= {"value", "unit", "uncertainty", "verdict", "note", "limit", "judged"}
+        assert m["limit"] is None or isinstance(m["limit"], str)
+        assert isinstance(m["judged"], bool)
+        if m["limit"] is None or m["verdict"] == "not measured":
+            assert m["judged"] is False, name    # nothing to judge by, or nothing measured
         assert m["verdict"] in ("pass", "warning", "fail", "not measured")
         assert m["value"] is None or math.isfinite(m["value"])
         assert (m["value"] is None) == (m["verdict"] == "not measured"), name
@@ -89,26 +93,33 @@ def test_assess_on_the_demo_volume_gives_the_demo_numbers(demo, tmp_path):
         {k: v["value"] for k, v in got["metrics"].items()}
 
 
+def _summary_check():
+    """``check_summary`` of tests/report/test_summary_text.py: an independent parser of the
+    log's printed summary table (tests are not a package, so it is loaded by path)."""
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).parents[1] / "report" / "test_summary_text.py"
+    spec = importlib.util.spec_from_file_location("summary_text_check", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
 def test_pdf_numbers_match_the_json(demo):
     pypdf = pytest.importorskip("pypdf")
     _, _, logs, js, _ = demo
     d = json.loads(js[0].read_text())
-    text = "\n".join(page.extract_text() for page in pypdf.PdfReader(logs[0]).pages)
-    from qa.report.pdf import format_value
-    for name, m in d["metrics"].items():
-        shown = format_value(m["value"], m["uncertainty"])
-        if m["value"] is None:
-            continue
-        # The summary row: metric name, then its value ± uncertainty as printed (a cell
-        # may wrap, so any white space stands for a space).
-        pattern = r"\s+".join(re.escape(part) for part in shown.split(" "))
-        assert re.search(re.escape(name) + r"\s+" + pattern, text), (name, shown)
-        printed = float(shown.split(" ± ")[0])
-        decimals = len(shown.split(" ± ")[0].partition(".")[2])
-        assert printed == pytest.approx(m["value"], abs=0.5 * 10 ** -decimals + 1e-12)
+    check = _summary_check()
+    text = check.pdf_text(logs[0].read_bytes())
+    # every row: value, uncertainty, baseline and change to the printed precision, unit
+    # and verdict word, read from the printed text alone
+    assert check.check_summary(text, d) == len(d["metrics"])
+    flat = " ".join(text.split())
     for word in ("do not replace", "qualified medical physicist", "national protocols",
                  "not for diagnosis", "Sign-off"):
-        assert word in text
+        assert word in flat
+    assert len(pypdf.PdfReader(logs[0]).pages) >= 4
 
 
 @pytest.mark.skipif(shutil.which("pdftoppm") is None, reason="poppler-utils (pdftoppm) not installed")
@@ -149,3 +160,44 @@ def test_malformed_limits_give_exit_2_and_write_nothing(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "limits.yaml:" in err and "asf_fwhm_typo" in err and "unknown metric" in err
     assert not out.exists()
+
+
+@pytest.mark.slow
+def test_demo_trend_flags_the_drift_before_any_action_limit(demo):
+    # The demo's own year of monthly checks (qa.scenario: stable for BASELINE_MONTHS,
+    # then a slowly blurring and noisier detector), judged with the demo's profile. It
+    # reuses the history the module's demo run wrote, so it simulates nothing more.
+    from qa.history import History
+    from qa.history.control import RULES
+    from qa.history.trends import OUTSIDE_ACTION, unit_trends
+    from qa.judge import load_profile
+    from qa.scenario import BASELINE_MONTHS, MONTHS, UNIT
+
+    _, out, _, _, _ = demo
+    with History.open(out / "history.sqlite") as h:
+        trends = unit_trends(h, UNIT["serial"], profile=load_profile(LIMITS))
+        overall = {s.acquired: s.overall for s in h.sessions(unit_id=UNIT["serial"])}
+    months = sorted(overall)
+    assert len(months) == MONTHS
+
+    def first(metrics, wanted):
+        """Index of the first month where a point of ``metrics`` has a flag in ``wanted``."""
+        hits = [months.index(p.acquired) for t in trends.metrics if t.metric in metrics
+                for p in t.points if set(p.flags) & wanted]
+        return min(hits, default=None)
+
+    every = {t.metric for t in trends.metrics}
+    rule = first(every, set(RULES))
+    action = first(every, {OUTSIDE_ACTION})
+    # no control rule fires on the stable baseline months (no false alarm) ...
+    assert rule is not None and rule >= BASELINE_MONTHS, rule
+    # ... one fires once the detector drifts, before any metric is outside an action
+    # limit, and before any session of the year fails
+    assert action is None or rule < action, (rule, action)
+    fails = [k for k, day in enumerate(months) if overall[day] == "fail"]
+    assert not fails or rule < fails[0], (rule, fails)
+    # the scenario's growing electronic noise shows in the noise figure itself, flagged
+    # while it is still inside its action limit
+    noise_rule = first({"noise_sd"}, set(RULES))
+    noise_action = first({"noise_sd"}, {OUTSIDE_ACTION})
+    assert noise_rule is not None and (noise_action is None or noise_rule < noise_action)
