@@ -46,9 +46,15 @@ def add_parser(sub) -> None:
     p.set_defaults(func=run)
 
 
+#: Time of day of the scenario's monthly checks (invented, like the rest of it).
+CHECK_TIME = "09:30:00"
+
+
 def _volume(transmissions, geometry, grid, phantom, check, recon):
     projections = expose(transmissions, geometry, check)
-    meta = dict(UNIT, acquired=check.date, simulated="yes", phantom=phantom.name,
+    stamp = check.date.replace("-", "") + CHECK_TIME.replace(":", "")   # DICOM DT
+    meta = dict(UNIT, acquired=check.date, acquisition_time=CHECK_TIME,
+                acquisition_datetime=stamp, simulated="yes", phantom=phantom.name,
                 seed=check.seed)
     return reconstruct(projections, grid, method=recon, meta=meta)
 
