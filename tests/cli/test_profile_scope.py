@@ -18,6 +18,7 @@ import pytest
 from qa import PROJECT_ROOT, publish, session
 from qa.cli import main
 from qa.io import write_npz
+from qa.locate.layout import Layout
 from qa.measure.base import FamilyResult, Measurement
 from qa.volume import Volume
 
@@ -27,7 +28,8 @@ NOTE = "does not state its acquisition geometry, so the scope of profile 'demo'"
 
 
 def _stand_in(volume, phantom, **_):
-    return None, (FamilyResult("asf", (Measurement("asf_fwhm", 5.8, "mm", 0.1),)),)
+    return Layout(phantom, {}), (FamilyResult("asf", (Measurement("asf_fwhm", 5.8, "mm",
+                                                                  0.1),)),)
 
 
 def _refuse(*_, **__):
