@@ -86,7 +86,9 @@ def test_estimate_follows_the_arc(volumes, recon):
         step = g.angles_deg[1] - g.angles_deg[0]
         ray = ray_half_angle(g, BEAD_Z)
         assert ray - 0.5 <= m.value <= ray + step / 2 + 0.5, name
-        assert m.uncertainty is not None and 0 < m.uncertainty < 0.5
+        # The jackknife part stays under 0.5 degree; u adds the method's bound (module notes).
+        bound = coverage.METHOD_BOUND_DEG / math.sqrt(3)
+        assert m.uncertainty is not None and bound < m.uncertainty < math.hypot(0.5, bound)
         got.append(m.value)
     assert got[0] < got[1] < got[2]          # increases with the true arc
 
@@ -125,23 +127,32 @@ def test_directional_energy_of_a_tilted_line_peaks_at_its_normal():
         assert angles[np.argmax(e)] == pytest.approx(-b, abs=0.25)
 
 
-def test_uncertainty_matches_the_scatter_of_noisy_repeats():
-    # 10 seeded exposures of one mid-arc acquisition at a low dose (20 quanta per pixel):
-    # the stated u must match the SD of the values. The SD of 10 values is itself
-    # uncertain by ~24 % (1/sqrt(2 (n-1))); 0.5-2 allows for that and the jackknife's
-    # own scatter (ratio 0.7-0.9 over 16 repeats of each arc in development).
-    g = small_geometry("dbt-mid-arc", photons_per_pixel=20.0)
+@pytest.mark.slow
+def test_uncertainty_matches_the_scatter_and_covers_the_truth_in_noisy_repeats():
+    # 50 seeded exposures of one mid-arc acquisition at a low dose (50 quanta per pixel;
+    # at 20, one repeat in 50 fell 2.9 degrees low, an outlier that inflates the SD).
+    # (1) The jackknife part of u (u without the method's bound) must match the SD of the
+    # values: the SD of 50 values is uncertain by ~10 % (1/sqrt(2 (n-1))); 0.5-2 allows
+    # for that and the jackknife's own scatter (0.7-0.9 in development).
+    # (2) Project requirement: u (k = 1) expanded to k = 2 (95 % for a normal error,
+    # common practice) covers the error against the truth in at least 90 % of the
+    # repeats. Truth: the half-range of the rays through the bead, from the source
+    # positions (geometry).
+    g = small_geometry("dbt-mid-arc", photons_per_pixel=50.0)
     t = expected_transmissions(bead_phantom(), g)
     values, stated = [], []
-    for seed in range(10):
+    for seed in range(50):
         m = measure(reconstruct(detect(t, g, seed=seed), GRID, method="saa"))
         assert m.value is not None, m.note
         # Within the required 3 degrees of the arc while measured.
         assert m.value == pytest.approx(g.half_arc_deg, abs=3.0)
         values.append(m.value)
         stated.append(m.uncertainty)
-    ratio = np.mean(stated) / np.std(values, ddof=1)
-    assert 0.5 < ratio < 2.0
+    values, stated = np.array(values), np.array(stated)
+    jackknife = np.sqrt(stated ** 2 - (coverage.METHOD_BOUND_DEG / math.sqrt(3)) ** 2)
+    assert 0.5 < np.mean(jackknife) / np.std(values, ddof=1) < 2.0
+    truth = ray_half_angle(g, BEAD_Z)
+    assert np.mean(np.abs(values - truth) <= 2 * stated) >= 0.90
 
 
 def test_noise_past_validity_gives_not_measured():

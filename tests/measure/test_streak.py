@@ -11,7 +11,7 @@ from qa.locate.nominal import locate_nominal
 from qa.measure.asf import measure_asf
 from qa.measure.streak import extent, fit_half_angle, measure_streak
 from qa.phantom.model import Phantom, PhantomObject, Shape
-from qa.simulate.acquire import simulate_projections
+from qa.simulate.acquire import detect, expected_transmissions, simulate_projections
 from qa.simulate.geometry import Detector
 from qa.simulate.profiles import load_geometry
 from qa.simulate.recon import reconstruct
@@ -94,3 +94,27 @@ def test_fit_rejects_an_outlier():
     angle, sd, a, b, keep = fit_half_angle(dz, e)
     assert angle == pytest.approx(12.0, abs=1e-6)
     assert not keep[3] and keep.sum() == len(dz) - 1
+
+
+@pytest.mark.slow
+def test_half_angle_uncertainty_covers_the_ray_half_angle_in_noisy_repeats():
+    # Project requirement: the stated uncertainty (k = 1), expanded to k = 2 (95 % for a
+    # normal error, common practice), covers the error against the truth in at least 90 %
+    # of 50 seeded noisy repeats of one case. Case: shift-and-add over the mid arc at 250
+    # quanta per pixel (every repeat measured; noise raises some planes' threshold).
+    # Truth: the half-angle of the extreme rays through the bead, from the source
+    # positions (geometry, not the family). Without the method's bound in u, the fit's
+    # SD alone (0.04 degree) covered 34 % of the repeats: a 0.1 degree bias dominated.
+    g = dataclasses.replace(small_geometry("dbt-mid-arc"), photons_per_pixel=250.0)
+    t = expected_transmissions(bead_phantom(), g)
+    truth = ray_half_angle(g, BEAD_Z)
+    grid = ReconGrid.from_field((-16, 16), (-4, 4), (0, 41), pixel_mm=0.1, plane_mm=1.0)
+    values, stated = [], []
+    for seed in range(50):
+        vol = reconstruct(detect(t, g, seed=seed), grid, method="saa")
+        m = measure_streak(vol, locate_nominal(vol, bead_phantom())).measurements[0]
+        assert m.value is not None, (seed, m.note)
+        values.append(m.value)
+        stated.append(m.uncertainty)
+    err, u = np.abs(np.array(values) - truth), np.array(stated)
+    assert np.mean(err <= 2 * u) >= 0.90, (err.max(), u.min())
