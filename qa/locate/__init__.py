@@ -262,7 +262,7 @@ def _place(volume, phantom, obj, pose, found, opts) -> Placed:
     if obj.role in ("disk", "marker"):
         if obj.role == "disk":
             r = shape.half_xyz_mm[0]
-            kw = dict(search_mm=opts["disk_search_mm"], inner_grow_mm=-0.2 * r,
+            kw = dict(search_mm=opts["disk_search_mm"], inner_grow_mm=0.0,
                       ring_mm=(0.5 * r, 1.5 * r))
         else:
             kw = dict(search_mm=opts["marker_search_mm"], ring_mm=(0.5, 1.5))

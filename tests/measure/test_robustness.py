@@ -376,11 +376,10 @@ def test_detectability_noise_and_misplacement_sweep(disk_results, sigma, shift):
         assert abs(m.value - truth) <= 3 * m.uncertainty + 0.05 * truth, (did, m, truth)
 
 
-@pytest.mark.xfail(strict=True, reason="qa/locate footprint search: the 4 mm disk, which "
-                   "stands out enough to be moved, is put 0.39-0.46 mm from where it is in "
-                   "3 of the 5 scenes, past the 0.2 R = 0.4 mm by which the signal ROI "
-                   "(0.8 R) stays inside the disk")
 def test_disks_are_placed_within_the_signal_roi_margin(disk_results):
+    # The signal ROI (0.8 R) stays inside the disk while the placement is within 0.2 R.
+    # (A template of 0.8 R matched a plateau of offsets up to 0.2 R, so noise put the
+    # 4 mm disk 0.39-0.46 mm off in 3 of 5 scenes; the full footprint peaks sharply.)
     for (sigma, shift), (layout, _) in disk_results.items():
         for did, x, y, d in DISKS:
             cx, cy = layout.placed[did].centre_xyz_mm[:2]
