@@ -46,11 +46,21 @@ def main(argv=None) -> int:
         if not getattr(args, "func", None):
             build_parser().print_help(sys.stderr)
             return 2
+        if getattr(args, "check_outputs", None):
+            args.check_outputs(args)
         return int(args.func(args))
     except InputError as exc:
         if traceback:
             raise
         print(f"lacuna: error: {exc.one_line()}", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        # A file system refusal the checks above could not foresee (a full disk, a file
+        # locked by another program): whatever was being written has been rolled back.
+        if traceback:
+            raise
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"lacuna: error: {where}{exc.strerror or exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("lacuna: interrupted; nothing half-written was kept", file=sys.stderr)

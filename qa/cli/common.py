@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 
 from ..errors import InputError
+from ..fileio import check_writable
 from ..history import DEFAULT_FILE_NAME
 from ..session import SessionResult
 
@@ -20,6 +21,26 @@ def add_output_options(parser: argparse.ArgumentParser) -> None:
                         help=f"history database (default: DIR/{DEFAULT_FILE_NAME})")
     parser.add_argument("--no-history", action="store_true",
                         help="do not read baselines from or record the session in a history")
+    parser.set_defaults(check_outputs=check_outputs)
+
+
+def check_outputs(args) -> None:
+    """Refuse output places that cannot be written, before any work (one line, exit 2).
+
+    ``--out`` must be a folder or a place where one can be made; ``--json`` and the
+    history file must be writable files (:func:`qa.fileio.check_writable`). Nothing is
+    created here.
+    """
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise InputError("is a file; expected a folder for the log", source=str(out),
+                         field="--out")
+    check_writable(out / "log.pdf", field="--out")
+    if args.json:
+        check_writable(args.json, field="--json")
+    history = history_path(args)
+    if history is not None:
+        check_writable(history, field="--history")
 
 
 def history_path(args) -> Path | None:
