@@ -1,4 +1,7 @@
-"""Fixtures for the reader/writer tests: small volumes and folders of DICOM slices.
+"""Shared fixtures: small volumes and folders of DICOM slices.
+
+Used by the reader/writer tests (``tests/io``) and the command-line tests of bad input
+and read options (``tests/cli``).
 
 Reference (used throughout): pydicom's bundled sample files
 (``pydicom.data.get_testdata_file``, described in pydicom's test_files/README.txt) and
