@@ -28,7 +28,7 @@ PUBLIC_META = ("manufacturer", "model", "serial", "station", "software", "instit
                "site", "detector", "acquired", "acquisition_time", "series_description",
                "reconstruction", "geometry", "views", "half_arc_deg", "source_to_image_mm",
                "motion", "source_file", "checksum", "sop_class", "transfer_syntax",
-               "simulated", "phantom", "seed")
+               "simulated", "phantom", "seed", "travel_axis")
 
 
 @dataclass(frozen=True)

@@ -141,6 +141,58 @@ class LazyStack(abc.ABC):
         return f"<{type(self).__name__} {self.shape} float32, read on demand>"
 
 
+class TransposedStack(LazyStack):
+    """Another stack seen with its rows and columns exchanged: ``t[z, i, j] == base[z, j, i]``.
+
+    Nothing is read when the view is made; each request is passed on to ``base`` with
+    its row and column ranges exchanged, so a block of the view costs what the same
+    block of ``base`` costs.
+
+    Parameters
+    ----------
+    base : LazyStack
+        The stack to view.
+
+    Examples
+    --------
+    >>> class Ramp(LazyStack):
+    ...     shape = (2, 2, 3)
+    ...     def read(self, planes, rows, cols):
+    ...         z, y, x = np.ix_(np.asarray(planes), np.asarray(rows), np.asarray(cols))
+    ...         return (100 * z + 10 * y + x).astype(np.float32)
+    >>> view = TransposedStack(Ramp())
+    >>> view.shape
+    (2, 3, 2)
+    >>> view[1, 2]
+    array([102., 112.], dtype=float32)
+    """
+
+    def __init__(self, base: LazyStack):
+        self._base = base
+
+    @property
+    def base(self) -> LazyStack:
+        """The stack seen through this view."""
+        return self._base
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        nz, ny, nx = self._base.shape
+        return (nz, nx, ny)
+
+    def read(self, planes: range, rows: range, cols: range) -> np.ndarray:
+        block = self._base[_as_slice(planes), _as_slice(cols), _as_slice(rows)]
+        return np.ascontiguousarray(block.transpose(0, 2, 1))
+
+    def __repr__(self) -> str:
+        return f"<TransposedStack {self.shape} float32 of {self._base!r}>"
+
+
+def _as_slice(r: range) -> slice:
+    """A slice selecting exactly ``r`` (a stop of -1 would mean the last element)."""
+    return slice(r.start, r.stop if r.stop >= 0 else None, r.step)
+
+
 def _frozen_mapping(values: Mapping | None) -> Mapping:
     return MappingProxyType(dict(values or {}))
 
@@ -230,6 +282,39 @@ class Volume:
     def plane_index(self, z_mm: float) -> int:
         """Index of the plane nearest to height ``z_mm``."""
         return int(np.clip(round(float(self.to_index((z_mm, 0, 0))[0])), 0, self.shape[0] - 1))
+
+    def transposed(self) -> "Volume":
+        """This volume with rows and columns exchanged: ``[z, y, x]`` becomes ``[z, x, y]``.
+
+        Spacing and origin follow (``dy`` and ``dx`` change places); the metadata is kept.
+        A :class:`LazyStack` is not read: the copy views it through a
+        :class:`TransposedStack`. An in-memory array is copied once, plane order kept.
+        The exchange is a mirror image about the diagonal ``x = y``.
+
+        Returns
+        -------
+        Volume
+
+        Examples
+        --------
+        >>> vol = Volume(np.arange(6, dtype=np.float32).reshape(1, 2, 3), (1.0, 0.1, 0.2),
+        ...              (5.0, -1.0, 2.0))
+        >>> t = vol.transposed()
+        >>> t.shape, t.spacing_mm, t.origin_mm
+        ((1, 3, 2), (1.0, 0.2, 0.1), (5.0, 2.0, -1.0))
+        >>> bool(np.array_equal(t.data[0], vol.data[0].T))
+        True
+        """
+        if isinstance(self.data, TransposedStack):
+            data = self.data.base
+        elif isinstance(self.data, LazyStack):
+            data = TransposedStack(self.data)
+        else:
+            data = np.ascontiguousarray(self.data.transpose(0, 2, 1))
+            data.flags.writeable = False  # a new array: no second copy in __post_init__
+        dz, dy, dx = self.spacing_mm
+        z0, y0, x0 = self.origin_mm
+        return Volume(data, (dz, dx, dy), (z0, x0, y0), self.meta)
 
     def with_meta(self, **extra) -> "Volume":
         """A copy of this volume with ``extra`` merged into its metadata."""

@@ -59,7 +59,14 @@ def _is_dicom(path: Path) -> bool:
     return len(head) == 132 and head[128:] == b"DICM"
 
 
-def read_volume(path, *, series: str | None = None, lazy: bool | None = None) -> Volume:
+#: Where a unit stores its direction of source travel: along the rows of its images (the
+#: volume's x is the column index, as DICOM's row direction cosines give it) or down the
+#: columns (the volume is read transposed, so that x is still the source travel).
+TRAVEL_AXES = ("rows", "columns")
+
+
+def read_volume(path, *, series: str | None = None, lazy: bool | None = None,
+                travel_axis: str = "rows") -> Volume:
     """Read a volume from a file or folder.
 
     Parameters
@@ -74,6 +81,12 @@ def read_volume(path, *, series: str | None = None, lazy: bool | None = None) ->
         rather than into memory (``None``: for volumes of at least
         :data:`qa.io.dicom_read.LAZY_MIN_BYTES` as float32; ``True``: whenever the pixel
         data are uncompressed; ``False``: never). Other formats are read into memory.
+    travel_axis : {"rows", "columns"}
+        Where the stored images hold the direction of source travel. DICOM does not say;
+        ``"rows"`` (the default) takes it along the rows, so x is the column index.
+        ``"columns"`` reads the volume transposed (:meth:`qa.volume.Volume.transposed`;
+        a lazy volume stays lazy), for a unit that stores its travel down the columns.
+        The choice is kept as ``meta["travel_axis"]``.
 
     Returns
     -------
@@ -84,9 +97,27 @@ def read_volume(path, *, series: str | None = None, lazy: bool | None = None) ->
     Raises
     ------
     InputError
-        The path does not exist, is of an unknown kind, or its reader refuses it.
+        The path does not exist, is of an unknown kind, or its reader refuses it; an
+        unknown ``travel_axis``.
     """
-    path = Path(path)
+    if travel_axis not in TRAVEL_AXES:
+        raise InputError(f"travel axis must be one of {', '.join(TRAVEL_AXES)}, got "
+                         f"{travel_axis!r}", source=str(path), field="travel_axis")
+    volume = _read(Path(path), series=series, lazy=lazy)
+    if travel_axis == "rows":
+        return volume.with_meta(travel_axis="rows")
+    extra = {"travel_axis": "columns"}
+    if "axes_from_dicom" in volume.meta:
+        extra["axes_from_dicom"] = (
+            "x = column direction cosines, y = row direction cosines (source travel down "
+            "the columns: the stored frames transposed, a mirror image of patient "
+            "coordinates), z = row x column direction cosines; plane 0 at the lowest "
+            "position along it")
+    return volume.transposed().with_meta(**extra)
+
+
+def _read(path: Path, *, series: str | None, lazy: bool | None) -> Volume:
+    """The reader's volume, as stored (see :func:`read_volume`)."""
     if not path.exists():
         raise InputError("file not found", source=str(path))
     if path.is_dir():
@@ -108,5 +139,6 @@ def read_volume(path, *, series: str | None = None, lazy: bool | None = None) ->
                      source=str(path))
 
 
-__all__ = ["read_volume", "write_npz", "write_dicom", "READERS", "read_npz", "read_npy",
+__all__ = ["read_volume", "TRAVEL_AXES",
+           "write_npz", "write_dicom", "READERS", "read_npz", "read_npy",
            "read_tiff", "read_dicom_file", "read_dicom_folder"]

@@ -19,8 +19,10 @@ Lacuna's volume axes are read off those vectors, with no resampling:
 * ``origin_mm`` = ``(P0 · n, P0 · c, P0 · r)`` of the first plane's first pixel.
 
 A scanner that stores its images with the direction of source travel down the columns
-gives a volume whose ``x`` is not the source travel; the facts needed to tell
-(orientation cosines, normal) are kept in the volume's meta.
+gives a volume whose ``x`` is not the source travel; DICOM does not say which axis it
+is. :func:`qa.io.read_volume` then exchanges rows and columns when asked
+(``travel_axis="columns"``); the header's orientation facts (cosines, normal) are kept
+in the volume's meta as the header states them.
 
 References
 ----------

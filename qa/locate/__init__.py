@@ -34,6 +34,9 @@
    ``residual_mm`` NaN and ``Pose.note`` says why.
    If then not one test object lies inside the volume even at its nominal place (a
    volume of the wrong phantom or spacing, or a few voxels), the volume is refused.
+   If no bead at all is found, the note adds :func:`travel_axis_hint`: a volume read
+   with its rows and columns exchanged puts the phantom at a mirrored, quarter-turned
+   pose that no search covers.
 
 An object not found within its search radius gets ``found=False`` and the note
 ``"<id> not found near (x, y, z) mm: <reason>"``; the metric families turn that into
@@ -130,6 +133,32 @@ def _require_overlap(volume: Volume, phantom: Phantom) -> None:
     raise InputError(f"no test object of phantom '{phantom.name}' lies inside the volume "
                      f"({shape} voxels; {span} mm) and its beads give no pose; expected "
                      "a reconstruction of this phantom", source=volume.meta.get("source_file"))
+
+
+def travel_axis_hint(meta) -> str:
+    """The note for a volume in which no bead was found anywhere.
+
+    Parameters
+    ----------
+    meta : mapping
+        The volume's metadata; ``meta["travel_axis"]`` (``"rows"`` when absent) is how
+        it was read (:func:`qa.io.read_volume`).
+
+    Returns
+    -------
+    str
+        A suggestion to read the volume with the other travel axis.
+
+    Examples
+    --------
+    >>> travel_axis_hint({})[:45]
+    'no bead found anywhere in the volume, read wi'
+    """
+    axis = "columns" if meta.get("travel_axis") == "columns" else "rows"
+    other = "rows" if axis == "columns" else "columns"
+    return (f"no bead found anywhere in the volume, read with the source travel along its "
+            f"{axis}: if the unit stores the travel along the {other}, assess it with "
+            f"--travel-axis {other}")
 
 
 def _is_rod(obj) -> bool:
@@ -343,6 +372,8 @@ def locate(volume: Volume, phantom: Phantom) -> Layout:
         else:
             why = (f"pose not determined: {n_found} of {len(beads)} beads found at their "
                    "nominal places, at least 2 needed in agreement; nominal pose used")
+        if beads and n_found == 0:
+            notes.append(travel_axis_hint(volume.meta))
         pose = Pose(residual_mm=float("nan"), note="; ".join([why] + notes))
     else:
         for oid, dist in rejected.items():
@@ -356,4 +387,4 @@ def locate(volume: Volume, phantom: Phantom) -> Layout:
     return Layout(phantom, placed, pose)
 
 
-__all__ = ["locate", "read_options", "DEFAULTS", "Layout", "Placed", "Pose"]
+__all__ = ["locate", "read_options", "travel_axis_hint", "DEFAULTS", "Layout", "Placed", "Pose"]
