@@ -86,19 +86,20 @@ def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_p
 
 def assess_file(source, phantom, profile, *, unit: str | None, out_dir, json_path=None,
                 history_path=None, date: str | None = None, kind: str = "routine",
-                series: str | None = None):
+                series: str | None = None, travel_axis: str = "rows"):
     """Read one volume file or folder, measure, judge and publish it.
 
     Returns ``(SessionResult, Published)``. The unit id is ``unit`` or, failing that,
     the serial number or station name in the header; ``series`` picks one series of a
-    folder holding several.
+    folder holding several; ``travel_axis`` is where the stored images hold the source
+    travel (:func:`qa.io.read_volume`).
     """
     from .fileio import sha256_of
     from .io import read_volume
     from .session import judge_session, safe_unit_id
 
     source = Path(source)
-    volume = read_volume(source, series=series)
+    volume = read_volume(source, series=series, travel_axis=travel_axis)
     volume = volume.with_meta(source_file=str(volume.meta.get("source_file", source)),
                               checksum=sha256_of(source))
     if unit:

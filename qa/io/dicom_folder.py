@@ -82,7 +82,8 @@ def _select(series: dict, wanted: str | None, folder: Path) -> list:
     if wanted is None:
         if len(series) == 1:
             return next(iter(series.values()))
-        raise InputError("mixed series in one folder, choose one with the series option: "
+        raise InputError("mixed series in one folder, choose one with --series (its UID, "
+                         "description or number): "
                          + "; ".join(_series_label(u, h) for u, h in sorted(series.items())),
                          source=str(folder))
     chosen = [h for uid, h in series.items() if wanted in (uid, h[0].description, h[0].number)]

@@ -38,6 +38,7 @@ from scipy import ndimage
 from qa import PROJECT_ROOT
 from qa.cli import main
 from qa.io import write_dicom
+from qa.locate import locate, travel_axis_hint
 from qa.locate.layout import Layout, Placed, Pose
 from qa.measure import mtf as mtf_family
 from qa.phantom import load_phantom
@@ -245,12 +246,12 @@ POSE_TEXT = r"\s+".join((
     "rotation", r"(?P<rot>-?\d+\.\d+)°,", "(?P<mirror>not\\s+mirrored|mirrored)"))
 
 
-def _assess(vol, folder, laterality="R"):
+def _assess(vol, folder, laterality="R", options=()):
     path = write_dicom(vol, folder / "volume.dcm", laterality=laterality)
     js = folder / "results.json"
     code = main(["assess", str(path), "--phantom", str(PHANTOM), "--limits", str(LIMITS),
                  "--unit", "FEN-DBT-1", "--out", str(folder), "--json", str(js),
-                 "--no-history"])
+                 "--no-history", *options])
     from pypdf import PdfReader
 
     result = json.loads(js.read_text())
@@ -296,6 +297,7 @@ def runs(tmp_path_factory):
                 change[name, "streak_planes"] = n_planes
         del copy
     out["change"], out["plate_before"], out["model"] = change, plate_before, model
+    out["volume"] = original
     out["truth"] = {name: truth(name, original) for name in ("original",) + TRANSFORMS}
     return out
 
@@ -375,3 +377,41 @@ def test_turn_streak_half_angle(runs):
     planes = re.compile(r"from \d+ of (\d+) planes")
     assert planes.search(t["note"])[1] == planes.search(o["note"])[1], t["note"]
     assert t["value"] <= o["value"] + K * _u(o, t)
+
+
+def _stored_down_the_columns(vol):
+    """``vol`` as a unit that stores its source travel down the columns keeps it: rows and
+    columns exchanged by numpy's transpose, spacing and origin following."""
+    (dz, dy, dx), (z0, y0, x0) = vol.spacing_mm, vol.origin_mm
+    return Volume(np.ascontiguousarray(np.asarray(vol.data).transpose(0, 2, 1)), (dz, dx, dy),
+                  (z0, x0, y0), vol.meta)
+
+
+def test_travel_down_the_columns_gives_the_same_figures(runs, tmp_path):
+    # Read back with --travel-axis columns, the stored copy is the original voxel for
+    # voxel (the writer's 16-bit quantisation takes the same range from the same values),
+    # so every figure, its uncertainty, its verdict and the fitted pose must be the
+    # original's exactly, and the JSON must say how the volume was read.
+    stored = _stored_down_the_columns(runs["volume"])
+    assert stored.shape == runs["volume"].shape[:1] + runs["volume"].shape[:0:-1]
+    code, metrics, pose = _assess(stored, tmp_path, options=("--travel-axis", "columns"))
+    o_code, o_metrics, o_pose = runs["original"]
+    assert code == o_code and set(metrics) == set(o_metrics)
+    for name, o in o_metrics.items():
+        t = metrics[name]
+        assert (t["value"], t["uncertainty"], t["verdict"]) == \
+            (o["value"], o["uncertainty"], o["verdict"]), name
+    assert pose is not None and pose.groupdict() == o_pose.groupdict()
+    volume = json.loads((tmp_path / "results.json").read_text())["volume"]
+    assert volume["travel_axis"] == "columns"
+
+
+def test_travel_down_the_columns_read_along_rows_suggests_the_option(runs):
+    # Read as stored (travel along the rows, the default) the copy is the phantom
+    # mirrored about x = y: a quarter turn no bead search covers. The locator must find
+    # nothing and its note must name the option.
+    layout = locate(_stored_down_the_columns(runs["volume"]), load_phantom(PHANTOM))
+    assert layout.pose.fitted_from == ()
+    assert not any(p.found for p in layout.with_role("bead"))
+    assert travel_axis_hint({}) in layout.pose.note
+    assert "--travel-axis columns" in layout.pose.note
