@@ -1,8 +1,9 @@
 """The Breast Tomosynthesis writer: round trips, outside validators, atomicity.
 
 Reference: pydicom (reads the stored values back), dcmtk's ``dcmdump`` (parses
-the file) and dicom3tools' ``dciodvfy`` (checks it against the IOD tables of DICOM
-PS3.3 A.55, Breast Tomosynthesis Image IOD).
+the file), ``dcmconv`` and ``dcmcrle`` (re-encode it in other transfer syntaxes) and
+dicom3tools' ``dciodvfy`` (checks it against the IOD tables of DICOM PS3.3 A.55, Breast
+Tomosynthesis Image IOD).
 """
 
 from __future__ import annotations
@@ -21,6 +22,10 @@ from qa.io.dicom_write import quantise
 
 needs_dcmdump = pytest.mark.skipif(shutil.which("dcmdump") is None,
                                    reason="dcmdump (Debian package dcmtk) is not installed")
+needs_dcmconv = pytest.mark.skipif(
+    shutil.which("dcmconv") is None or shutil.which("dcmcrle") is None
+    or shutil.which("dcmdump") is None,
+    reason="dcmconv, dcmcrle and dcmdump (Debian package dcmtk) are not installed")
 needs_dciodvfy = pytest.mark.skipif(
     shutil.which("dciodvfy") is None,
     reason="dciodvfy (Debian package dicom3tools) is not installed")
@@ -140,6 +145,38 @@ def test_dcmdump_does_flag_a_damaged_file(small_volume, tmp_path):
     run = subprocess.run(["dcmdump", str(path)], capture_output=True, text=True, check=False)
     assert run.returncode != 0 or any(ln.startswith(("W:", "E:"))
                                       for ln in (run.stdout + run.stderr).splitlines())
+
+
+@needs_dcmconv
+@pytest.mark.parametrize("command, syntax, name", [
+    (["dcmconv", "+te"], "LittleEndianExplicit", "Explicit VR Little Endian"),
+    (["dcmconv", "+ti"], "LittleEndianImplicit", "Implicit VR Little Endian"),
+    (["dcmconv", "+tb"], "BigEndianExplicit", "Explicit VR Big Endian"),
+    (["dcmcrle"], "RLELossless", "RLE Lossless"),
+], ids=["explicit-little", "implicit-little", "explicit-big", "rle"])
+def test_dcmtk_conversions_read_back_bit_exact(small_volume, tmp_path, command, syntax, name):
+    """Our file re-encoded by dcmtk (dcmconv: other uncompressed transfer syntaxes, the
+    retired big-endian one included, which dcmtk still writes; dcmcrle: RLE Lossless,
+    PS3.5 Annex G) reads back to the same voxels, in memory and on demand."""
+    ours = write_dicom(small_volume(), tmp_path / "ours.dcm", unit=UNIT)
+    converted = tmp_path / "converted.dcm"
+    run = subprocess.run(command + [str(ours), str(converted)], capture_output=True,
+                         text=True, check=False)
+    assert run.returncode == 0, run.stdout + run.stderr
+    dump = subprocess.run(["dcmdump", "-M", "+P", "0002,0010", str(converted)],
+                          capture_output=True, text=True, check=False)
+    assert f"={syntax} " in dump.stdout, dump.stdout  # dcmtk's name of what it wrote
+    # the stored values as pydicom decodes dcmtk's encoding: those of our file
+    assert np.array_equal(pydicom.dcmread(converted).pixel_array,
+                          pydicom.dcmread(ours).pixel_array)
+    expected = read_volume(ours)
+    for lazy in (False, True):
+        back = read_volume(converted, lazy=lazy)
+        assert back.meta["transfer_syntax"] == name
+        assert np.asarray(back.data).tobytes() == np.asarray(expected.data).tobytes()
+        assert back.spacing_mm == expected.spacing_mm and back.origin_mm == expected.origin_mm
+        for key in ("serial", "model", "value_slope", "value_intercept"):
+            assert back.meta[key] == expected.meta[key], key
 
 
 def _dciodvfy(path):
