@@ -46,4 +46,32 @@ def figure_drawing(fig, width_mm: float):
     scale = width_mm * mm / drawing.width
     drawing.scale(scale, scale)
     drawing.width, drawing.height = drawing.width * scale, drawing.height * scale
+    object.__setattr__(drawing, "__class__", _FigureDrawing)   # shapes check attributes
     return drawing
+
+
+def _figure_classes():
+    """The Drawing and renderer that put a figure's images in the PDF as image objects.
+
+    reportlab's own renderer writes a Drawing's images inline in the page's content
+    stream, which some PDF readers fail to parse; image objects (XObjects) are read by all.
+    """
+    from reportlab.graphics import renderPDF
+    from reportlab.graphics.shapes import Drawing
+    from reportlab.lib.utils import ImageReader
+
+    class Renderer(renderPDF._PDFRenderer):
+        def drawImage(self, image):
+            if image.path is not None:
+                self._canvas.drawImage(ImageReader(image.path), image.x, image.y,
+                                       image.width, image.height)
+
+    class FigureDrawing(Drawing):
+        def draw(self, showBoundary=None):
+            Renderer().draw(renderPDF.renderScaledDrawing(self), self.canv, 0, 0)
+
+    FigureDrawing.__name__ = FigureDrawing.__qualname__ = "FigureDrawing"
+    return FigureDrawing
+
+
+_FigureDrawing = _figure_classes()

@@ -78,7 +78,8 @@ def _sections(result: SessionResult, volume, st) -> list:
     else:
         text = "Pose not fitted: objects placed at their nominal positions."
     if pose.note:
-        text += f" {pose.note}" + ("" if pose.note.rstrip().endswith(".") else ".")
+        note = pose.note.strip()
+        text += f" {note[:1].upper()}{note[1:]}" + ("" if note.endswith(".") else ".")
     out.append(Paragraph(pdf_text(text), st["body"]))
     missing = [p for p in result.layout.placed.values() if not p.found]
     for p in missing:

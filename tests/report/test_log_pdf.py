@@ -152,3 +152,30 @@ def test_the_header_gives_time_of_acquisition_and_acquisition_facts(profile):
     assert acquisition_facts(meta) == ("15 views over ±12.5° (25° arc) · continuous source "
                                        "motion · source to image 650 mm")
     assert acquisition_facts({}) == ""
+
+
+def test_images_inside_figures_are_image_objects_every_reader_parses():
+    # Noise images drawn inline in a content stream broke pypdf's parser; as image
+    # objects (XObjects) they are parsed like any other image.
+    import numpy as np
+    from matplotlib.figure import Figure
+    from reportlab.platypus import SimpleDocTemplate
+
+    from qa.report.figures import figure_drawing
+
+    rng = np.random.default_rng(7)
+    buf = io.BytesIO()
+    doc = SimpleDocTemplate(buf)
+    story = []
+    for _ in range(3):
+        fig = Figure(figsize=(3, 3))
+        fig.add_subplot().imshow(rng.random((120, 120)), cmap="gray")
+        story.append(figure_drawing(fig, 60))
+    doc.build(story)
+    pages = pypdf.PdfReader(io.BytesIO(buf.getvalue())).pages
+    xobjects = [name for p in pages
+                for name, obj in p["/Resources"].get("/XObject", {}).items()
+                if obj.get_object()["/Subtype"] == "/Image"]
+    assert len(xobjects) == 3 and sum(len(p.images) for p in pages) == 3
+    for p in pages:
+        p.extract_text()
