@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import datetime as dt
 from pathlib import Path
 
@@ -27,14 +28,24 @@ def add_parser(sub) -> None:
     p.add_argument("--history", metavar="FILE", default=None,
                    help=f"history database (default: DIR/{DEFAULT_FILE_NAME})")
     p.add_argument("--no-history", action="store_true", help="do not record the sessions")
-    p.add_argument("--processes", type=int, default=2, metavar="N",
-                   help="worker processes on this machine (default: 2)")
+    p.add_argument("--processes", type=_worker_count, default=2, metavar="N",
+                   help="worker processes on this machine, at least 1 (default: 2)")
     p.add_argument("--scheduler", metavar="ADDRESS", default=None,
                    help="run on the Dask cluster at ADDRESS instead (tcp://host:port)")
     p.add_argument("--summary", metavar="FILE", default=None,
                    help="summary CSV (default: DIR/<today>_batch_summary.csv)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
+
+
+def _worker_count(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number of at least 1, got {text!r}")
+    return n
 
 
 def run(args) -> int:
@@ -63,6 +74,6 @@ def run(args) -> int:
     for o in failed:
         print(f"{'failed':8s} {o.task.label}: {o.error}")
     print(f"{len(ok)} assessed, {len(failed)} failed; summary: {summary}")
-    if any(o.overall == "fail" for o in ok):
-        return 1
-    return 2 if failed else 0
+    if failed:
+        return 2
+    return 1 if any(o.overall == "fail" for o in ok) else 0
