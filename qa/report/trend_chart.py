@@ -32,6 +32,7 @@ FLAG_CODES = {OUTSIDE_ACTION: "A", OUTSIDE_WARNING: "W", BEYOND_3: "S3", TWO_OF_
 _MARKS = ((OUTSIDE_ACTION, "X", PALETTE[1]), (OUTSIDE_WARNING, "^", "#8a5a12"),
           ("control rule", "D", PALETTE[2]))
 _WARN = "#8a5a12"
+_LEVEL_WORD = {"warning": "warn", "action": "act"}
 #: Width of one small chart in the grid, in mm (two to a 174 mm row).
 CELL_MM = 86.0
 
@@ -93,7 +94,8 @@ def trend_figure(trend: MetricTrend, *, width_in: float = 6.8, height_in: float 
         if lo - reach <= line.value <= hi + reach:
             drawn.append(line.value)
             return True
-        off.append(f"{line.kind} {line.level[:4]} {compact(line.value)} "
+        off.append(f"{line.kind} {_LEVEL_WORD.get(line.level, line.level)} "
+                   f"{compact(line.value)} "
                    f"({'below' if line.value < lo else 'above'})")
         return False
 

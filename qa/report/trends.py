@@ -24,7 +24,7 @@ from ..history.control import (BEYOND_3, EIGHT_ONE_SIDE, EWMA_BEYOND, EWMA_L, EW
                                FOUR_OF_FIVE, TWO_OF_THREE)
 from ..history.trends import OUTSIDE_ACTION, OUTSIDE_WARNING, MetricTrend, UnitTrends, unit_trends
 from .figures import figure_drawing
-from .numbers import significant, with_unit
+from .numbers import format_value, significant, with_unit
 from .style import ACCENT, RULE, SHADE, pdf_text, styles, verdict_mark
 from .trend_chart import FLAG_CODES, chart_grid, codes, metric_title, trend_figure
 
@@ -137,9 +137,9 @@ def _flagged_rows(trends: UnitTrends, most: int) -> tuple[list, int]:
     rows = [("Date", "Session", "Metric", "Value ± u", "Flags (codes above)")]
     shown = flagged_points(trends, most)
     for t, p in shown:
-        u = "" if p.uncertainty is None else f" ± {significant(p.uncertainty, 2)}"
         rows.append((p.acquired[:16], "this" if p.current else str(p.session_id),
-                     t.metric, with_unit(f"{significant(p.value)}{u}", t.unit), codes(p.flags)))
+                     t.metric, with_unit(format_value(p.value, p.uncertainty), t.unit),
+                     codes(p.flags)))
     total = sum(len(t.flagged()) for t in trends.metrics)
     return (rows if len(rows) > 1 else []), total - len(shown)
 
@@ -154,7 +154,7 @@ def _method_text() -> str:
             "5 beyond 1 sigma, R8 8 on one side, E EWMA beyond its limit; n.m.: sessions "
             "in which the metric was not measured. Points are judged against the profile "
             "named above; limits drawn dashed (action) and dotted (warning), control limits "
-            "dash-dotted. Values to four significant digits.")
+            "dash-dotted. Table values to four significant digits.")
 
 
 def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
@@ -192,7 +192,8 @@ def trend_flowables(trends: UnitTrends, *, new_page: bool = True,
     flagged, more = _flagged_rows(trends, most_flagged)
     if flagged:
         title = f"Flagged points (up to {most_flagged}: headline figures first, then the " \
-                "latest of the others" + (f"; {more} more are counted above)" if more else ")")
+                "latest of the others" + (f"; {more} more are counted in the table above)"
+                                          if more else ")")
         out += [Spacer(1, 2 * mm), Paragraph(pdf_text(title), st["h3"]),
                 data_table(flagged, (28, 16, 44, 46, 40), st)]
     chosen = [t for t in trends.metrics if charts == "all" or charted(t)]
