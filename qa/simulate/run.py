@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 from ..errors import InputError
 from ..phantom.model import Phantom
 from ..volume import Volume
@@ -36,6 +38,50 @@ def grid_for(phantom: Phantom, geometry: DbtGeometry) -> ReconGrid:
     return ReconGrid.from_field(x, y, z, pixel_mm=pitch, plane_mm=geometry.plane_spacing_mm)
 
 
+#: Roles whose objects are measured, and how far around each (in its own radii) the
+#: measurement reads the image: the background ring of a disk reaches 2.5 radii
+#: (qa/measure/detectability.py); other objects are checked over their own extent.
+_MEASURED_REACH = {"bead": 1.0, "edge": 1.0, "disk": 2.5, "uniform": 1.0, "marker": 1.0,
+                   "insert": 1.0}
+
+
+def check_detector_covers(phantom: Phantom, geometry: DbtGeometry) -> None:
+    """Refuse a simulation in which a test object falls off the detector in some view.
+
+    Each measured object's bounding box (a disk's grown to its background ring) is
+    projected from every nominal source onto the detector plane; a corner outside the
+    detector's pixel centres means that part of the object, or the image around it, is
+    not reconstructed, and a figure measured there would be wrong without saying so.
+
+    Raises
+    ------
+    InputError
+        Naming the first such object, the view and the detector's extent.
+    """
+    det = geometry.detector
+    u, v = det.u_mm(), det.v_mm()
+    signs = np.array([[i, j, k] for i in (-1, 1) for j in (-1, 1) for k in (-1, 1)], float)
+    for obj in phantom.objects:
+        reach = _MEASURED_REACH.get(obj.role)
+        if reach is None:
+            continue
+        centre = np.asarray(obj.shape.centre_xyz_mm, float)
+        half = np.full(3, obj.shape.bounding_radius_mm)
+        half[:2] *= reach
+        corners = centre + signs * half
+        for view, source in enumerate(geometry.nominal_sources()):
+            t = source[2] / (source[2] - corners[:, 2])
+            xy = source[None, :2] + t[:, None] * (corners[:, :2] - source[None, :2])
+            if (xy[:, 0].min() < u[0] or xy[:, 0].max() > u[-1]
+                    or xy[:, 1].min() < v[0] or xy[:, 1].max() > v[-1]):
+                raise InputError(
+                    f"{obj.role} '{obj.id}' at ({centre[0]:g}, {centre[1]:g}, {centre[2]:g}) mm "
+                    f"falls off the detector of geometry '{geometry.name}' in view {view} "
+                    f"(detector x {u[0]:g} to {u[-1]:g} mm, y {v[0]:g} to {v[-1]:g} mm): use a "
+                    "geometry with a larger detector or move the object",
+                    source=phantom.source, field=f"objects.{obj.id}")
+
+
 @dataclass(frozen=True)
 class Simulation:
     projections: Projections
@@ -46,7 +92,12 @@ class Simulation:
 def simulate(phantom: Phantom, geometry: DbtGeometry, *, recon: str = "fbp", seed: int = 0,
              noise: bool = True, progress: bool = False, meta: dict | None = None,
              recon_options: dict | None = None) -> Simulation:
-    """Simulate an acquisition of ``phantom`` and reconstruct it."""
+    """Simulate an acquisition of ``phantom`` and reconstruct it.
+
+    Refuses (:func:`check_detector_covers`) a phantom whose test objects some view does
+    not see whole.
+    """
+    check_detector_covers(phantom, geometry)
     grid = grid_for(phantom, geometry)
     projections = simulate_projections(phantom, geometry, seed=seed, noise=noise,
                                        progress=progress)

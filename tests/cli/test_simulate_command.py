@@ -27,7 +27,7 @@ objects:
     return p
 
 
-DBT_GEOMETRIES = ("dbt-narrow-arc", "dbt-mid-arc", "dbt-wide-arc")
+DBT_GEOMETRIES = tuple(sorted(p.stem for p in GEOMETRIES.glob("dbt-*.yaml")))
 DBT_RECONS = ("saa", "fbp", "sart", "sirt", "tv")
 
 
@@ -81,7 +81,39 @@ def test_unknown_reconstruction_for_a_section_is_refused(tmp_path, capsys):
     assert "not available for section-fan" in capsys.readouterr().err
 
 
-def test_every_registered_dbt_reconstruction_is_run_above():
+def test_every_registered_dbt_reconstruction_and_shipped_geometry_is_run_above():
     from qa.simulate.recon import methods
 
     assert set(DBT_RECONS) == set(methods())
+    assert {"dbt-narrow-arc", "dbt-mid-arc", "dbt-wide-arc"} <= set(DBT_GEOMETRIES)
+
+
+def test_a_test_object_off_the_detector_is_refused(tmp_path, capsys):
+    # Geometry of central projection: from the source at the end of the arc (x = 650 tan
+    # 12.5 deg = 144 mm, z = 650 mm) a disk at x = -40 mm, 20 mm up, lands at
+    # x = 144 + (650 / 630) (-40 - 144) = -46 mm, beyond the detector's -45 mm edge.
+    ph = tmp_path / "wide.yaml"
+    ph.write_text("""phantom: wide
+energy_keV: 20
+field_mm: {x: [-44, 4], y: [3, 7], z: [2, 30]}
+objects:
+  - {id: slab, role: background, shape: box, centre_mm: [-20, 5, 15], size_mm: [50, 14, 30], material: pmma}
+  - {id: far, role: disk, shape: cylinder, centre_mm: [-40, 5, 20], radius_mm: 1.0, height_mm: 1, material: water}
+""")
+    out = tmp_path / "out"
+    assert main(["simulate", str(ph), "--geometry", str(GEOMETRIES / "dbt-mid-arc.yaml"),
+                 "--recon", "saa", "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "disk 'far'" in err and "falls off the detector" in err and "objects.far" in err
+    assert not out.exists()
+    # Every shipped phantom fits the geometries it is meant for.
+    from qa.phantom import load_phantom
+    from qa.simulate.profiles import load_geometry
+    from qa.simulate.run import check_detector_covers
+
+    for phantom, geometries in (("lacuna-dbt-demo", ("dbt-narrow-arc", "dbt-mid-arc",
+                                                     "dbt-wide-arc")),
+                                ("lacuna-dbt-qc", ("dbt-mid-arc-large-field",))):
+        for g in geometries:
+            check_detector_covers(load_phantom(PROJECT_ROOT / "phantoms" / f"{phantom}.yaml"),
+                                  load_geometry(GEOMETRIES / f"{g}.yaml"))
