@@ -73,6 +73,19 @@ DEFAULTS = {"signal_fraction": 0.8, "background_inner": 1.5, "background_outer":
             "eye_peak_cycles_per_degree": observers.EYE_PEAK_CYCLES_PER_DEGREE,
             "display_magnification": 1.0, "afc_alternatives": 4,
             "afc_percent_correct": 62.5}
+#: Largest ratio of the background ring's SD to the noise SD of the NPS region: a ring
+#: holding an edge (the end of the reconstructed field, another object) has an SD many
+#: times the noise (230 times for a disk at the edge of a truncated simulation), and its
+#: SDNR and d' would be wrong without saying so. Noise alone gives about 1.
+MAX_BACKGROUND_RATIO = 3.0
+
+
+def noise_sd(spec) -> float:
+    """Noise SD from an NPS: the square root of its integral (Parseval)."""
+    dy, dx = spec.spacing_mm
+    return float(np.sqrt(np.sum(spec.nps) / (spec.roi_px ** 2 * dy * dx)))
+
+
 _FIGURES = (("sdnr", "1"), ("dprime_npw", "1"), ("dprime_npwe", "1"),
             ("threshold_contrast", "value"))
 _SPECS = (
@@ -277,14 +290,6 @@ def measure(volume, layout, settings=None) -> FamilyResult:
             continue
         radius = float(disk.shape.half_xyz_mm[0])
         zp = float(z_axis[iz])
-        note = f"plane z = {zp:.2f} mm, {s['n_signal']} px signal, {s['sectors']} sectors"
-        measurements.append(Measurement(f"sdnr_{disk.id}", s["sdnr"], "1", s["u_sdnr"], note))
-        rois += [_circle(f"{disk.id} signal", *disk.centre_xyz_mm[:2],
-                         2 * opts["signal_fraction"] * radius, zp),
-                 _circle(f"{disk.id} background (inner)", *disk.centre_xyz_mm[:2],
-                         2 * opts["background_inner"] * radius, zp),
-                 _circle(f"{disk.id} background (outer)", *disk.centre_xyz_mm[:2],
-                         2 * opts["background_outer"] * radius, zp)]
         if iz not in noise_cache:
             try:
                 spec, source = plane_nps(np.asarray(plane, float), volume, layout, iz, opts)
@@ -293,6 +298,23 @@ def measure(volume, layout, settings=None) -> FamilyResult:
             except NotMeasurable as exc:
                 noise_cache[iz] = exc
         noise = noise_cache[iz]
+        if not isinstance(noise, NotMeasurable):
+            ratio = s["sd_bg"] / noise_sd(noise[0])
+            if ratio > MAX_BACKGROUND_RATIO:
+                measurements += missing(
+                    f"the background ring of disk '{disk.id}' is not uniform: its SD is "
+                    f"{ratio:.1f} times the noise SD of the {noise[1]} (limit "
+                    f"{MAX_BACKGROUND_RATIO:g}); the disk may lie at the edge of the "
+                    "reconstructed field or next to another object")
+                continue
+        note = f"plane z = {zp:.2f} mm, {s['n_signal']} px signal, {s['sectors']} sectors"
+        measurements.append(Measurement(f"sdnr_{disk.id}", s["sdnr"], "1", s["u_sdnr"], note))
+        rois += [_circle(f"{disk.id} signal", *disk.centre_xyz_mm[:2],
+                         2 * opts["signal_fraction"] * radius, zp),
+                 _circle(f"{disk.id} background (inner)", *disk.centre_xyz_mm[:2],
+                         2 * opts["background_inner"] * radius, zp),
+                 _circle(f"{disk.id} background (outer)", *disk.centre_xyz_mm[:2],
+                         2 * opts["background_outer"] * radius, zp)]
         if isinstance(noise, NotMeasurable):
             measurements += missing(str(noise), _FIGURES[1:])
             continue

@@ -155,6 +155,23 @@ def test_npw_dprime_uncertainty_covers_the_truth():
     assert 0.7 < stated.mean() / errors.std(ddof=1) < 1.4
 
 
+def test_disk_at_the_edge_of_the_reconstructed_field_is_not_measured():
+    # A disk whose background ring crosses the end of the data (zeros beyond y = 11 mm,
+    # as a truncated reconstruction leaves them): the ring's SD is then the step's, tens
+    # of times the noise, and SDNR and d' would be wrong without saying so. The other
+    # disk, clear of the step, is measured as before.
+    volume, layout = make_scene([("edge", 10.0, 10.0, 4.0, 3.0), ("clear", 45.0, 10.0, 4.0, 3.0)],
+                                uniform=((50.0, 30.0, 4.0), (12.0, 12.0, 1.0)),
+                                shape=(1, 480, 640), contrast=0.5, sigma=1.0, seed=3)
+    data = np.array(volume.data)
+    data[:, 110:, :300] = 0.0        # rows from y = 11 mm, columns x < 30 mm
+    volume = Volume(data, volume.spacing_mm, volume.origin_mm, volume.meta)
+    got = values(detectability.measure(volume, layout, None))
+    for name in ("sdnr_edge", "dprime_npw_edge", "threshold_contrast_edge"):
+        assert got[name].value is None and "not uniform" in got[name].note, got[name]
+    assert got["sdnr_clear"].value is not None
+
+
 def test_disk_not_found_gives_not_measured_with_reason():
     volume, layout = make_scene(WHITE_DISKS[:2], shape=(1, 400, 400), lost=("d2",))
     got = values(detectability.measure(volume, layout, None))
