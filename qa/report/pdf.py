@@ -93,14 +93,23 @@ def _sections(result: SessionResult, volume, st) -> list:
         title = family.title if family else fam.family
         block = [Paragraph(pdf_text(title), st["h2"])]
         for m in fam.measurements:
-            block.append(Paragraph(pdf_text(dedupe_words(
-                f"{m.name} = {with_unit(format_value(m.value, m.uncertainty), m.unit)}"
-                + (f" — {m.note}" if m.note else ""))), st["small"]))
+            block.append(Paragraph(pdf_text(_figure_line(m)), st["small"]))
         fig = family.plot(fam) if family and family.plot else None
         if fig is not None:
             block.append(figure_drawing(fig, 150))
         out.append(KeepTogether(block))
     return out
+
+
+def _figure_line(m) -> str:
+    """One figure of a family section: ``name = value ± u unit — note`` (spatial
+    frequencies in lp/mm, as everywhere in the log)."""
+    if m.value is None:
+        text = f"{m.name}: " + (m.note or "not measured")
+    else:
+        text = f"{m.name} = {with_unit(format_value(m.value, m.uncertainty), m.unit)}" \
+            + (f" — {m.note}" if m.note else "")
+    return dedupe_words(text).replace("cycles/mm", "lp/mm")
 
 
 def closing_flowables(st) -> list:

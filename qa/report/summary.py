@@ -23,8 +23,8 @@ CAUTION = ("These results support, and do not replace, the judgement of a qualif
            "protocols. Lacuna checks equipment; it is not for diagnosis.")
 
 #: Column titles and widths (mm) of the summary table; 174 mm in all.
-COLUMNS = (("Metric", 32.5), ("Value ± u", 30), ("Unit", 13.5), ("", 4.5), ("Verdict", 15.5),
-           ("Baseline", 16), ("Change", 16), ("Limits", 46))
+COLUMNS = (("Metric", 32.5), ("Value ± u", 30), ("Unit", 14.5), ("", 4.5), ("Verdict", 15.5),
+           ("Baseline", 16.5), ("Change", 17.5), ("Limits", 43))
 _PAD = 2.5
 
 

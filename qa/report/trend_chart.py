@@ -74,6 +74,9 @@ def trend_figure(trend: MetricTrend, *, width_in: float = 6.8, height_in: float 
     """
     fig, ax = new_figure(width_in, height_in)
     small = not legend
+    if small:   # fixed margins, so the charts of a grid line up with each other
+        fig.set_layout_engine("none")
+        ax.set_position([0.15, 0.13, 0.82, 0.63])
     pts = trend.points
     x = [_when(p.acquired) for p in pts]
     y = [p.value for p in pts]
@@ -229,7 +232,7 @@ def chart_grid(trends, *, height_mm: float = 48.0) -> list:
     grid = Table(rows, colWidths=[87 * mm, 87 * mm])
     grid.setStyle(TableStyle([("LEFTPADDING", (0, 0), (-1, -1), 0),
                               ("RIGHTPADDING", (0, 0), (-1, -1), 0),
-                              ("TOPPADDING", (0, 0), (-1, -1), 1),
+                              ("TOPPADDING", (0, 0), (-1, -1), 4),
                               ("BOTTOMPADDING", (0, 0), (-1, -1), 1),
                               ("VALIGN", (0, 0), (-1, -1), "TOP")]))
     return [figure_drawing(key_figure(), 174), grid]
