@@ -354,6 +354,26 @@ def _bar(total: int, show: bool):
 SUMMARY_FIELDS = ("source", "series", "status", "unit", "date", "overall", "report", "reason")
 
 
+def public_text(task: BatchTask, text: str) -> str:
+    """``text`` with the patient identifiers of the task's DICOM header cut out.
+
+    Folders and files are often named after the patient; the reader scrubs the source
+    path it puts in a session's metadata (:func:`qa.io.deidentify.scrub_path`), and the
+    summary and the failure lines get the same treatment, from the header of the file or
+    of the first DICOM file of the folder (left as it is when there is none to read).
+    """
+    from .io.deidentify import scrub_path
+
+    source = Path(task.source)
+    files = [source] if source.is_file() else sorted(
+        p for p in source.iterdir() if p.is_file()) if source.is_dir() else []
+    for f in files[:50]:
+        ds = _header(f)
+        if ds is not None:
+            return scrub_path(text, ds)
+    return text
+
+
 def summary_csv(outcomes, path) -> Path:
     """One row per session (and one column per metric value), written atomically."""
     names = sorted({k for o in outcomes for k in o.metrics})
@@ -361,7 +381,8 @@ def summary_csv(outcomes, path) -> Path:
     w = csv.writer(buf)
     w.writerow(list(SUMMARY_FIELDS) + names)
     for o in outcomes:
-        w.writerow([o.task.source, o.task.series or "", "assessed" if o.ok else "failed",
-                    o.unit, o.date, o.overall, o.report, o.error]
+        w.writerow([public_text(o.task, str(o.task.source)), o.task.series or "",
+                    "assessed" if o.ok else "failed", o.unit, o.date, o.overall, o.report,
+                    public_text(o.task, o.error)]
                    + ["" if o.metrics.get(n) is None else repr(o.metrics[n]) for n in names])
     return write_text_atomic(path, buf.getvalue())

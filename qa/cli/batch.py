@@ -6,7 +6,7 @@ import argparse
 import datetime as dt
 from pathlib import Path
 
-from ..batch import find_sessions, run_dask, run_local, summary_csv
+from ..batch import find_sessions, public_text, run_dask, run_local, summary_csv
 from ..history import DEFAULT_FILE_NAME
 from ..judge import load_profile
 from ..phantom import load_phantom
@@ -70,9 +70,10 @@ def run(args) -> int:
     ok = [o for o in outcomes if o.ok]
     failed = [o for o in outcomes if not o.ok]
     for o in ok:
-        print(f"{o.overall:8s} {o.unit} {o.date}  {o.task.label}")
+        print(f"{o.overall:8s} {o.unit} {o.date}  {public_text(o.task, o.task.label)}")
     for o in failed:
-        print(f"{'failed':8s} {o.task.label}: {o.error}")
+        print(f"{'failed':8s} {public_text(o.task, o.task.label)}: "
+              f"{public_text(o.task, o.error)}")
     print(f"{len(ok)} assessed, {len(failed)} failed; summary: {summary}")
     if failed:
         return 2

@@ -124,3 +124,24 @@ def test_identifiers_reach_no_output(session, capsys):
 
     leaks = {where: hits for where, text in texts.items() if (hits := found_in(text))}
     assert not leaks, leaks
+
+
+def test_identifiers_reach_no_batch_output(session, tmp_path, capsys):
+    # The same export tree through `lacuna batch`, with a second, truncated copy of the
+    # file in another patient-named folder: the failure line and the summary CSV name
+    # the source, and must name it scrubbed, as the session's metadata does.
+    path, _ = session
+    root = path.parents[len(FOLDERS) - 1]
+    broken = root / "PHILIPPA_VANTONGEREN_MRN004217" / "dbt_NHS4857773456.dcm"
+    broken.parent.mkdir()
+    data = path.read_bytes()
+    broken.write_bytes(data[: len(data) * 2 // 3])
+    out, summary = tmp_path / "out", tmp_path / "summary.csv"
+    code = main(["batch", str(root), "--phantom", str(PHANTOM), "--limits", str(LIMITS),
+                 "--out", str(out), "--quiet", "--summary", str(summary), "--no-history"])
+    printed = capsys.readouterr()
+    assert code == 2 and "1 assessed, 1 failed" in printed.out, printed.out
+    table = summary.read_text(encoding="utf-8")
+    assert "[patient]" in table
+    for where, text in {"summary CSV": table, "standard output": printed.out + printed.err}.items():
+        assert found_in(text) == [], (where, found_in(text))
