@@ -15,7 +15,7 @@ from pathlib import Path
 
 from .fileio import write_bytes_atomic
 from .history import History
-from .history.records import MeasurementRecord, SessionRecord, unit_info_from
+from .history.records import MeasurementRecord, SessionRecord, acquisition_from, unit_info_from
 from .report.jsonout import session_json
 from .report.pdf import render_pdf, write_pdf
 from .session import SessionResult
@@ -39,7 +39,7 @@ def session_record(result: SessionResult, report_path: str) -> SessionRecord:
         tool_version=result.tool_version, overall=result.overall, measurements=ms,
         unit_info=unit_info_from(result.meta), source=str(result.meta.get("source_file", "")),
         checksum=str(result.meta.get("checksum", "")), report_path=report_path,
-        kind=result.kind)
+        kind=result.kind, acquisition=acquisition_from(result.meta))
 
 
 def baselines_for(history_path, unit_id: str, phantom: str) -> dict[str, float]:

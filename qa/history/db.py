@@ -27,7 +27,7 @@ from types import MappingProxyType
 from typing import Iterator, Sequence
 
 from ..errors import InputError
-from .records import (UNIT_INFO_KEYS, BaselineValue, MeasurementRecord, SeriesPoint,
+from .records import (ACQUISITION_KEYS, UNIT_INFO_KEYS, BaselineValue, MeasurementRecord, SeriesPoint,
                       SessionRecord, StoredBaseline, StoredSession, UnitRecord, _iso)
 from .schema import BUSY_TIMEOUT_S, MIGRATIONS, SCHEMA_VERSION, Migration, connect, migrate
 from .schema import utc_now as _utc_now
@@ -36,7 +36,8 @@ __all__ = ["History", "BUSY_TIMEOUT_S", "MIGRATIONS", "SCHEMA_VERSION", "Migrati
            "migrate"]
 
 _SESSION_COLUMNS = ("id, unit_id, acquired, analysed, phantom, profile, tool_version, "
-                    "overall, kind, unit_info, source, checksum, report_path, recorded")
+                    "overall, kind, unit_info, source, checksum, report_path, recorded, "
+                    "acquisition")
 
 
 def _instant(value, *, field_name: str) -> str:
@@ -161,6 +162,12 @@ class History:
                 f"unit facts {', '.join(refused)} are not accepted (allowed: "
                 f"{', '.join(sorted(UNIT_INFO_KEYS))}); patient or study identifiers never "
                 "enter the history; pass the metadata through unit_info_from()")
+        refused = sorted(set(session.acquisition) - ACQUISITION_KEYS)
+        if refused:
+            raise self._error(
+                f"acquisition facts {', '.join(refused)} are not accepted (allowed: "
+                f"{', '.join(sorted(ACQUISITION_KEYS))}); pass the metadata through "
+                "acquisition_from()")
         info = dict(session.unit_info)
         with self._write() as conn:
             row = conn.execute("SELECT info, first_acquired, last_acquired FROM units "
@@ -179,11 +186,12 @@ class History:
                               max(row[2], session.acquired), session.unit_id))
             cur = conn.execute(
                 f"INSERT INTO sessions ({_SESSION_COLUMNS}) "
-                "VALUES (NULL, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "VALUES (NULL, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (session.unit_id, session.acquired, session.analysed, session.phantom,
                  session.profile, session.tool_version, session.overall, session.kind,
                  json.dumps(info, sort_keys=True), session.source, session.checksum,
-                 session.report_path, _utc_now()))
+                 session.report_path, _utc_now(),
+                 json.dumps(dict(session.acquisition), sort_keys=True)))
             session_id = int(cur.lastrowid)
             conn.executemany(
                 "INSERT INTO measurements VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
@@ -221,7 +229,7 @@ class History:
             args).fetchall()
         return [StoredSession(r[0], r[1], r[2], r[3], r[4], r[5], r[6], r[7], r[8],
                               MappingProxyType(json.loads(r[9])), r[10], r[11], r[12], r[13],
-                              r[14]) for r in rows]
+                              r[15], MappingProxyType(json.loads(r[14]))) for r in rows]
 
     def _session_row(self, session_id: int):
         row = self._db().execute(f"SELECT {_SESSION_COLUMNS} FROM sessions WHERE id = ?",
@@ -243,7 +251,7 @@ class History:
         r = self._session_row(session_id)
         return SessionRecord(r[1], r[2], r[3], r[4], r[5], r[6], r[7],
                              self.measurements(session_id), json.loads(r[9]), r[10], r[11],
-                             r[12], r[8])
+                             r[12], r[8], json.loads(r[14]))
 
     def series(self, unit_id: str, metric: str, *,
                phantom: str | None = None) -> list[SeriesPoint]:
@@ -377,7 +385,8 @@ class History:
 
         Columns: session facts (``session_id``, ``unit_id``, ``acquired``, ...), the
         measurement (``metric``, ``value``, ``unit``, ``uncertainty``, ``verdict``,
-        ``limit_text``, ``note``) and one ``unit_<fact>`` column per unit fact present.
+        ``limit_text``, ``note``), one ``acquisition_<fact>`` column per acquisition
+        fact and one ``unit_<fact>`` column per unit fact present.
         Not-measured values are empty cells. The file is written to a temporary name in
         the same folder and then renamed, so a reader never sees half a file.
         """
@@ -386,7 +395,8 @@ class History:
         sql = ("SELECT s.id, s.unit_id, s.acquired, s.analysed, s.phantom, s.profile, s.kind,"
                " s.tool_version, s.overall, m.name, m.value, m.unit, m.uncertainty, "
                "m.verdict, m.limit_text, m.note, s.source, s.checksum, s.report_path, "
-               "s.unit_info FROM measurements m JOIN sessions s ON s.id = m.session_id")
+               "s.acquisition, s.unit_info FROM measurements m "
+               "JOIN sessions s ON s.id = m.session_id")
         args = []
         if unit_id is not None:
             sql += " WHERE s.unit_id = ?"
@@ -396,8 +406,10 @@ class History:
                    "kind", "tool_version", "overall", "metric", "value", "unit",
                    "uncertainty", "verdict", "limit_text", "note", "source", "checksum",
                    "report_path"]
-        records = [dict(zip(columns, r[:-1]), **{f"unit_{k}": v for k, v in
-                                                  json.loads(r[-1]).items()}) for r in rows]
+        records = [dict(zip(columns, r[:-2]),
+                        **{f"acquisition_{k}": v for k, v in json.loads(r[-2]).items()},
+                        **{f"unit_{k}": v for k, v in json.loads(r[-1]).items()})
+                   for r in rows]
         facts = sorted({k for rec in records for k in rec} - set(columns))
         frame = pd.DataFrame.from_records(records, columns=columns + facts)
         target = Path(path)

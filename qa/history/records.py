@@ -34,6 +34,27 @@ UNIT_INFO_KEYS = frozenset({
     "department", "room", "modality", "detector", "detector_serial",
 })
 
+#: Facts of one acquisition a session may carry into the history (from the image header
+#: or the simulator): how the volume was made, never who was imaged.
+ACQUISITION_KEYS = frozenset({
+    "acquisition_time", "geometry", "reconstruction", "views", "half_arc_deg",
+    "source_to_image_mm", "motion", "travel_axis", "simulated",
+})
+
+
+def acquisition_from(meta: Mapping) -> dict[str, str]:
+    """Pick the acquisition facts of :data:`ACQUISITION_KEYS` out of a metadata mapping.
+
+    Every other key is dropped; numbers are written as text; empty values are dropped.
+
+    Examples
+    --------
+    >>> acquisition_from({"views": 15, "half_arc_deg": 12.5, "PatientID": "X1"})
+    {'half_arc_deg': '12.5', 'views': '15'}
+    """
+    return {k: str(v) for k, v in sorted(dict(meta or {}).items())
+            if k in ACQUISITION_KEYS and v not in (None, "") and not isinstance(v, (dict, list))}
+
 #: DICOM attribute keywords that name the same unit facts (for :func:`unit_info_from`).
 _DICOM_KEYWORDS = {
     "Manufacturer": "manufacturer", "ManufacturerModelName": "model",
@@ -122,7 +143,9 @@ class SessionRecord:
 
     ``acquired`` is an ISO date or date-time (the scanner's local time, as in the image
     header); ``analysed`` an ISO date-time. Both are normalised to ISO 8601 text.
-    ``unit_info`` may only use the keys of :data:`UNIT_INFO_KEYS` when recorded.
+    ``unit_info`` may only use the keys of :data:`UNIT_INFO_KEYS` when recorded, and
+    ``acquisition`` (the facts of this acquisition: geometry, views, arc, distance) only
+    those of :data:`ACQUISITION_KEYS`.
     """
 
     unit_id: str
@@ -138,6 +161,7 @@ class SessionRecord:
     checksum: str = ""
     report_path: str = ""
     kind: str = "routine"
+    acquisition: Mapping[str, str] = field(default_factory=dict)
 
     def __post_init__(self):
         for attr in ("unit_id", "phantom", "profile", "tool_version"):
@@ -171,6 +195,12 @@ class SessionRecord:
                 raise InputError(f"unit facts must be text, got {key!r}: {value!r}",
                                  field="unit_info")
         object.__setattr__(self, "unit_info", MappingProxyType(info))
+        facts = dict(self.acquisition or {})
+        for key, value in facts.items():
+            if not isinstance(key, str) or not isinstance(value, str):
+                raise InputError(f"acquisition facts must be text, got {key!r}: {value!r}",
+                                 field="acquisition")
+        object.__setattr__(self, "acquisition", MappingProxyType(facts))
 
 
 @dataclass(frozen=True)
@@ -196,6 +226,7 @@ class StoredSession:
     report_path: str
     recorded: str
     n_measurements: int
+    acquisition: Mapping[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)

@@ -73,6 +73,9 @@ MIGRATIONS: tuple[Migration, ...] = (
     Migration(2, "index of measurements by metric name (trends across units)", (
         "CREATE INDEX measurement_by_name ON measurements(name, session_id)",
     )),
+    Migration(3, "acquisition facts of each session (geometry, views, arc, distance)", (
+        "ALTER TABLE sessions ADD COLUMN acquisition TEXT NOT NULL DEFAULT '{}'",
+    )),
 )
 
 #: The schema version this tool writes.

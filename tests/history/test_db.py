@@ -260,3 +260,24 @@ def test_records_validate_their_fields(make_session):
     twice = (MeasurementRecord("a", 1.0, "mm", None, "pass"),) * 2
     with pytest.raises(InputError, match="measurement 'a' appears twice"):
         SessionRecord("U", "2024-01-01", "2024-01-01T10:00", "p", "q", "0.1", "pass", twice)
+
+
+def test_acquisition_facts_are_kept_per_session_and_exported(history, make_session, tmp_path):
+    # Issue requirement: acquisition facts from the header (distance source to detector,
+    # scan arc, ...) reach the history; only the keys of ACQUISITION_KEYS, never others.
+    from qa.history.records import acquisition_from
+
+    facts = acquisition_from({"views": 15, "half_arc_deg": 12.5, "source_to_image_mm": 650.0,
+                              "motion": "step-and-shoot", "PatientName": "Doe^Jane",
+                              "source_file": "/exports/Doe/x.dcm"})
+    assert facts == {"half_arc_deg": "12.5", "motion": "step-and-shoot",
+                     "source_to_image_mm": "650.0", "views": "15"}
+    sid = history.record(make_session(acquisition=facts))
+    assert history.load_session(sid).acquisition == facts
+    (stored,) = history.sessions()
+    assert dict(stored.acquisition) == facts
+    table = pd.read_csv(history.export_csv(tmp_path / "h.csv"))
+    assert set(table["acquisition_views"]) == {15}
+    assert set(table["acquisition_half_arc_deg"]) == {12.5}
+    with pytest.raises(InputError, match="acquisition facts PatientName are not accepted"):
+        history.record(make_session(acquisition={"PatientName": "Doe^Jane"}))
