@@ -11,7 +11,8 @@ The contract (``README.md``, "Results as JSON")::
 ``judged`` is false when no level was applied to the value (not measured, no limit in
 the profile, or only a constancy limit and no baseline): its ``pass`` is then no
 verdict. ``limit`` is the profile's limit as text, ``null`` without one. Further keys
-(phantom, tool version, analysis time, baselines) may be added; the ones above keep their
+(phantom, tool version, analysis time, baselines, the phantom's fitted ``pose``) may be
+added; the ones above keep their
 names and meaning.
 """
 
@@ -44,7 +45,19 @@ def session_json(result: SessionResult, report_path: str | None) -> dict:
             "overall": result.overall, "report": None if report_path is None else str(report_path),
             "phantom": result.phantom.name, "tool_version": result.tool_version,
             "analysed": result.analysed, "kind": result.kind,
-            "volume": dict(result.meta), "metrics": metrics}
+            "volume": dict(result.meta), "pose": pose_json(result), "metrics": metrics}
+
+
+def pose_json(result: SessionResult) -> dict | None:
+    """Where the phantom was found: shift (mm), turn (deg), mirroring, fit residual (mm)."""
+    layout = getattr(result, "layout", None)
+    pose = getattr(layout, "pose", None)
+    if pose is None:
+        return None
+    return {"shift_x_mm": _num(pose.shift_xy_mm[0]), "shift_y_mm": _num(pose.shift_xy_mm[1]),
+            "shift_z_mm": _num(pose.shift_z_mm), "rotation_deg": _num(pose.rotation_deg),
+            "mirrored": bool(pose.mirrored), "residual_mm": _num(pose.residual_mm),
+            "fitted_from": list(pose.fitted_from), "note": pose.note}
 
 
 def write_json(result: SessionResult, path, report_path: str | None) -> None:

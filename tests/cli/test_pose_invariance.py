@@ -256,7 +256,7 @@ def _assess(vol, folder, laterality="R", options=()):
 
     result = json.loads(js.read_text())
     text = "\n".join(p.extract_text() for p in PdfReader(result["report"]).pages)
-    return code, result["metrics"], re.search(POSE_TEXT, text)
+    return code, result["metrics"], re.search(POSE_TEXT, text), result["pose"]
 
 
 @pytest.fixture(scope="module")
@@ -308,7 +308,7 @@ def _u(*ms):
 
 @pytest.mark.parametrize("name", ("original",) + TRANSFORMS)
 def test_assess_runs_and_finds_the_pose(runs, name):
-    code, metrics, pose = runs[name]
+    code, metrics, pose, pose_json = runs[name]
     assert code in (0, 1)
     for m in METRICS:
         assert metrics[m]["value"] is not None, (m, metrics[m]["note"])
@@ -322,6 +322,10 @@ def test_assess_runs_and_finds_the_pose(runs, name):
     assert float(pose["rot"]) == pytest.approx(rot, abs=0.3)
     assert float(pose["z"]) == pytest.approx(0.0, abs=0.3)
     assert (pose["mirror"] == "mirrored") == mirror, pose["mirror"]
+    # The JSON carries the same pose and its fit residual (to the log's two decimals).
+    assert f"{pose_json['shift_x_mm']:.2f}" == pose["x"] and pose_json["mirrored"] == mirror
+    assert f"{pose_json['rotation_deg']:.2f}" == pose["rot"]
+    assert pose_json["fitted_from"] == ["bead", "b2", "b3"] and pose_json["residual_mm"] < 0.3
 
 
 def _cases():
@@ -394,8 +398,8 @@ def test_travel_down_the_columns_gives_the_same_figures(runs, tmp_path):
     # original's exactly, and the JSON must say how the volume was read.
     stored = _stored_down_the_columns(runs["volume"])
     assert stored.shape == runs["volume"].shape[:1] + runs["volume"].shape[:0:-1]
-    code, metrics, pose = _assess(stored, tmp_path, options=("--travel-axis", "columns"))
-    o_code, o_metrics, o_pose = runs["original"]
+    code, metrics, pose, _ = _assess(stored, tmp_path, options=("--travel-axis", "columns"))
+    o_code, o_metrics, o_pose, _ = runs["original"]
     assert code == o_code and set(metrics) == set(o_metrics)
     for name, o in o_metrics.items():
         t = metrics[name]
