@@ -37,7 +37,7 @@ def _load(name):
 
 def mtf_rows(rob):
     from qa.measure import mtf  # noqa: F401  (registers the family)
-    errors, missing = [], 0
+    rows = {key: ([], 0) for key in ("50 noiseless", "10 noiseless", "noisy")}
     for sigma_px in (0.7, 1.0, 1.5, 2.0):
         for angle in (2.0, 4.0, 8.0):
             for noise in (0.0, 1.0):
@@ -46,15 +46,19 @@ def mtf_rows(rob):
                 got = rob.mtf_of(plane, rob.plate_phantom(angle))
                 for level in (50, 10):
                     truth = rob.mtf50_truth(sigma_px, level / 100)
+                    key = "noisy" if noise else f"{level} noiseless"
                     for d in ("x", "y"):
                         m = got[f"mtf{level}_{d}"]
+                        errors, missing = rows[key]
                         if m.value is None:
-                            missing += 1
+                            rows[key] = (errors, missing + 1)
                         else:
                             errors.append((100 * (m.value / truth - 1),
                                            100 * m.uncertainty / truth if noise else None))
-    return ("MTF50/MTF10 (x, y)", "closed form: Gaussian-blurred pixel-integrated edge",
-            errors, missing, "relative %")
+    truth = "closed form: Gaussian-blurred pixel-integrated edge"
+    return [("MTF50 (x, y)", truth, *rows["50 noiseless"], "relative %"),
+            ("MTF10 (x, y)", truth, *rows["10 noiseless"], "relative %"),
+            ("MTF50, MTF10 in noise", truth, *rows["noisy"], "relative %")]
 
 
 def asf_rows(rob):
@@ -163,7 +167,7 @@ def dprime_rows(rob):
 
 def main(argv=None) -> int:
     rob, cov, gho = _load("test_robustness"), _load("test_coverage"), _load("test_streak_ghosts")
-    rows = [mtf_rows(rob), asf_rows(rob), *streak_and_coverage_rows(cov), ghost_rows(gho),
+    rows = [*mtf_rows(rob), asf_rows(rob), *streak_and_coverage_rows(cov), ghost_rows(gho),
             nps_rows(), *dprime_rows(rob)]
     head = (f"{'metric':<22} {'truth':<52} {'cases':>5} {'n.m.':>4} {'median':>8} {'worst':>8} "
             f"{'worst/u':>7}  error")
