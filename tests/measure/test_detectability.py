@@ -113,18 +113,24 @@ def test_dprime_figures_are_consistent_with_the_threshold(white_result):
         assert "uniform region 'flat'" in npw.note
 
 
-def test_sdnr_uncertainty_covers_the_truth():
-    contrast, sigma = 0.5, 1.0
-    truth = contrast / sigma          # closed form of SDNR for the drawn disk and noise
+#: Closed forms for a disk of contrast 0.5 in white noise of SD 1: SDNR = ΔC / σ, and NPW
+#: d' = ΔC sqrt(N) / σ with N the disk's pixels (ICRU Report 54, 1996; Burgess 1994).
+COVERAGE_TRUTHS = {"sdnr": 0.5 / 1.0, "dprime_npw": 0.5 * math.sqrt(pixels_in_disk(3.0)) / 1.0}
+
+
+@pytest.mark.parametrize("figure", sorted(COVERAGE_TRUTHS))
+def test_uncertainty_covers_the_truth(figure):
+    truth = COVERAGE_TRUTHS[figure]
     errors, stated = [], []
-    # Seeds 0-49. (Seeds 100-149 were tried first and cover only 86 %: that block holds
-    # two noise draws beyond 3 standard errors in the raw data itself, which no honest
-    # uncertainty covers at k = 2; over 800 seeds the k = 2 coverage is 94 %, so any block
-    # of 50 fails the 90 % criterion with a binomial chance of roughly 1 in 10.)
+    # Seeds 0-49. (For SDNR, seeds 100-149 were tried first and cover only 86 %: that
+    # block holds two noise draws beyond 3 standard errors in the raw data itself, which
+    # no honest uncertainty covers at k = 2; over 800 seeds the k = 2 coverage is 94 %,
+    # so any block of 50 fails the 90 % criterion with a binomial chance of roughly 1 in
+    # 10.)
     for seed in range(50):
         volume, layout = make_scene([("d", 10.0, 10.0, 4.0, 3.0)], shape=(1, 200, 200),
-                                    contrast=contrast, sigma=sigma, seed=seed)
-        m = values(detectability.measure(volume, layout, None))["sdnr_d"]
+                                    contrast=0.5, sigma=1.0, seed=seed)
+        m = values(detectability.measure(volume, layout, None))[f"{figure}_d"]
         errors.append(m.value - truth)
         stated.append(m.uncertainty)
     errors, stated = np.array(errors), np.array(stated)
@@ -133,25 +139,6 @@ def test_sdnr_uncertainty_covers_the_truth():
     assert np.mean(np.abs(errors) <= 2 * stated) >= 0.90
     # ... and not by being inflated: the mean stated u within 0.7-1.4 of the observed SD
     # (the SD of 50 errors is itself uncertain by ~10 %).
-    assert 0.7 < stated.mean() / errors.std(ddof=1) < 1.4
-
-
-def test_npw_dprime_uncertainty_covers_the_truth():
-    # Closed form of NPW d' in white noise (ICRU Report 54, 1996; Burgess 1994):
-    # d' = ΔC sqrt(N) / sigma, N the disk's pixels. Same 50 seeds and criterion as the
-    # SDNR check above: k = 2 covers the error in at least 90 % of the repeats, and the
-    # stated u is not inflated (0.7-1.4 of the observed SD, itself uncertain by ~10 %).
-    contrast, sigma = 0.5, 1.0
-    truth = contrast * math.sqrt(pixels_in_disk(3.0)) / sigma
-    errors, stated = [], []
-    for seed in range(50):
-        volume, layout = make_scene([("d", 10.0, 10.0, 4.0, 3.0)], shape=(1, 200, 200),
-                                    contrast=contrast, sigma=sigma, seed=seed)
-        m = values(detectability.measure(volume, layout, None))["dprime_npw_d"]
-        errors.append(m.value - truth)
-        stated.append(m.uncertainty)
-    errors, stated = np.array(errors), np.array(stated)
-    assert np.mean(np.abs(errors) <= 2 * stated) >= 0.90
     assert 0.7 < stated.mean() / errors.std(ddof=1) < 1.4
 
 
