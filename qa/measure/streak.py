@@ -26,7 +26,7 @@ quadrature with ``METHOD_BOUND_DEG / sqrt(3)`` for the method's own bias.
 Validity of the half-angle: a plane's threshold is the fraction or 4 profile-noise SDs,
 whichever is larger, and a plane whose noise raises it past ``MAX_RAISE`` times the
 fraction is left out; the fit needs 4 planes and a slope above 3 of its SDs, otherwise
-the half-angle is "not measured".
+the half-angle is "not measured", as it is when the fit's SD exceeds ``MAX_FIT_SD_DEG``.
 
 References
 ----------
@@ -65,6 +65,12 @@ MIN_OFFSET_MM = 2.0   # nearer offsets still overlap the bead itself
 #: It enters the uncertainty as a rectangular distribution, bound / sqrt(3) (JCGM
 #: 100:2008, the GUM, 4.3.7), beside the fit's scatter.
 METHOD_BOUND_DEG = 0.5
+#: Largest SD (deg) of the fitted half-angle: extents that scatter more about their line
+#: come from noise-shaped profiles. In seeded simulations of narrow-arc (±7.5°) FBP at
+#: 400 quanta per pixel the fit SD was 0.21-0.42 degree and the half-angle 5.2-8.1 for
+#: rays at 7.27; shift-and-add and well-exposed FBP gave 0.02-0.04 degree, within 0.5
+#: degree of the rays (tests/measure/test_robustness.py).
+MAX_FIT_SD_DEG = 0.15
 #: A copy counts as separate when the profile dips between it and each neighbour by at
 #: least this fraction of the copies' median height (our own resolution criterion,
 #: stricter than Sparrow's limit of no dip at all, 1916) and by 4 profile-noise SDs.
@@ -283,6 +289,11 @@ def measure_streak(volume, layout, settings=None) -> FamilyResult:
         return FamilyResult(FAMILY, (Measurement.missing(name, unit, why), spacing), (), plot)
     angle, sd, a, b, kept = fit_half_angle(offsets[ok], ext[ok])
     plot.update({"fit": (a, b), "half_angle_deg": angle})
+    if sd > MAX_FIT_SD_DEG:
+        why = (f"the streak extents scatter about their line (fitted half-angle {angle:.1f}° "
+               f"with an SD of {sd:.2f}°, over the {MAX_FIT_SD_DEG:g}° a half-angle needs): "
+               "noise shapes the profiles")
+        return FamilyResult(FAMILY, (Measurement.missing(name, unit, why), spacing), (), plot)
     if not angle > 3.0 * sd:
         why = (f"the streak extent does not grow with |Δz| beyond its scatter (fitted "
                f"half-angle {angle:.1f}° ± {sd:.1f}°): noise dominates the profiles")

@@ -187,11 +187,10 @@ def test_streak_and_coverage_noise_sweep(mid_volumes):
         assert m.value is None and "not found" in m.note
 
 
-@pytest.mark.xfail(strict=True, reason="streak extents of narrow-arc filtered backprojection "
-                   "are fragile in noise: at 400 quanta per pixel (no plane left out as too "
-                   "noisy) seeds 0-3 give 5.2-8.1 degrees (arc 7.5, rays 7.27), "
-                   "5.24 +- 0.42 for seed 0")
 def test_streak_of_narrow_arc_fbp_in_noise():
+    # Narrow-arc FBP at 400 quanta per pixel: the extents are noise-shaped (seeds 0-3 gave
+    # 5.2-8.1 degrees for rays at 7.27 before the fit-SD limit of streak.py); each seed
+    # must now be within 1.5 degrees of the arc or not measured with the reason.
     g = dataclasses.replace(mid_arc(), angles_deg=tuple(np.linspace(-7.5, 7.5, 9)),
                             pivot_height_mm=40.0, source_to_image_mm=660.0)
     t = expected_transmissions(bead_phantom(), g)
@@ -200,6 +199,7 @@ def test_streak_of_narrow_arc_fbp_in_noise():
         vol = reconstruct(detect(t, gg, seed=seed), GRID, method="fbp")
         m = streak.measure_streak(vol, locate_nominal(vol, bead_phantom())).measurements[0]
         assert m.value is None or abs(m.value - 7.5) <= 1.5, (seed, m)
+        assert m.value is not None or "scatter about their line" in m.note, (seed, m)
 
 
 @pytest.mark.parametrize("radius", [0.25, 0.75])     # the 8 mm field holds the strips
