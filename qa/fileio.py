@@ -147,6 +147,21 @@ def write_files_atomic(files) -> list[Path]:
     return [path for _, path, _ in staged]
 
 
+def free_name(path) -> Path:
+    """``path``, or ``<stem>_2<suffix>``, ``_3``... : the first name not yet taken.
+
+    For outputs that must never overwrite an earlier run's (the demo's volume); a name
+    taken between this call and the write is not guarded against.
+    """
+    path = Path(path)
+    n = 1
+    while True:
+        candidate = path if n == 1 else path.with_name(f"{path.stem}_{n}{path.suffix}")
+        if not candidate.exists():
+            return candidate
+        n += 1
+
+
 def sha256_of(path, *, chunk: int = 1 << 20) -> str:
     """SHA-256 of a file, or of a folder's files (sorted by relative path, names included)."""
     import hashlib

@@ -63,10 +63,16 @@ def history_pages(history_path, result: SessionResult, profile) -> list:
 
 
 def publish(result: SessionResult, volume, *, out_dir, json_path=None, history_path=None,
-            extra_pages=()) -> Published:
-    """Write the log (and JSON) and record the session; see the module's notes."""
+            extra_pages=(), json_beside: bool = False) -> Published:
+    """Write the log (and JSON) and record the session; see the module's notes.
+
+    With ``json_beside`` (and no ``json_path``) the JSON takes the log's own name with
+    ``.json``, so a later log of the same day (``_2``...) gets its own JSON too.
+    """
     pdf = render_pdf(result, volume, extra_pages=extra_pages)
     report = write_pdf(result, out_dir, pdf=pdf)
+    if json_path is None and json_beside:
+        json_path = report.with_suffix(".json")
     written = [report]
     try:
         text = json.dumps(session_json(result, str(report)), indent=2,

@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 
 from .. import PROJECT_ROOT
-from ..fileio import sha256_of
+from ..fileio import free_name, sha256_of
 from ..history import History
 from ..io import write_dicom
 from ..judge import load_profile
@@ -101,15 +101,14 @@ def run(args) -> int:
     volume = _volume(transmissions, geometry, grid, phantom, today, args.recon)
     out = Path(args.out)
     if not args.no_volume:
-        vol_path = out / f"{today.date}_{unit}_volume.dcm"
+        vol_path = free_name(out / f"{today.date}_{unit}_volume.dcm")
         write_dicom(volume, vol_path)
         volume = volume.with_meta(source_file=str(vol_path), checksum=sha256_of(vol_path))
         print(f"volume:  {vol_path}")
     result = judge_session(volume, phantom, profile, unit_id=unit, kind="demo",
                            baselines=baselines_for(hist, unit, phantom.name))
-    json_path = args.json or out / f"{result.date}_{result.unit_id}_{profile.name}.json"
-    published = publish(result, volume, out_dir=out, json_path=json_path, history_path=hist,
-                        extra_pages=history_pages(hist, result, profile))
+    published = publish(result, volume, out_dir=out, json_path=args.json, history_path=hist,
+                        extra_pages=history_pages(hist, result, profile), json_beside=True)
     print_summary(result, published.report, published.json)
     print(f"done in {time.perf_counter() - t0:.0f} s")
     return result.exit_code

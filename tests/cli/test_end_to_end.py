@@ -201,3 +201,23 @@ def test_demo_trend_flags_the_drift_before_any_action_limit(demo):
     noise_rule = first({"noise_sd"}, set(RULES))
     noise_action = first({"noise_sd"}, {OUTSIDE_ACTION})
     assert noise_rule is not None and (noise_action is None or noise_rule < noise_action)
+
+
+def test_a_second_demo_the_same_day_overwrites_nothing(demo, tmp_path):
+    # A later run into the same folder (its history already filled, so one session) gets
+    # its own log, JSON and volume (_2) and leaves the first run's files byte for byte.
+    from qa.fileio import sha256_of
+
+    _, out, logs, js, vol = demo
+    again = tmp_path / "again"
+    shutil.copytree(out, again)
+    before = {p.name: sha256_of(p) for p in again.iterdir() if p.suffix in (".pdf", ".json", ".dcm")}
+    assert main(["demo", "--out", str(again), "--seed", "8"]) in (0, 1)
+    after = {p.name: sha256_of(p) for p in again.iterdir() if p.suffix in (".pdf", ".json", ".dcm")}
+    assert {k: after[k] for k in before} == before
+    added = sorted(set(after) - set(before))
+    stem = logs[0].stem
+    assert added == sorted([f"{stem}_2.json", f"{stem}_2.pdf", f"{vol[0].stem}_2.dcm"]), added
+    result = json.loads((again / f"{stem}_2.json").read_text(encoding="utf-8"))
+    assert result["report"].endswith(f"{stem}_2.pdf")
+    assert result["volume"]["source_file"].endswith(f"{vol[0].stem}_2.dcm")
