@@ -359,23 +359,26 @@ def plot(result: FamilyResult) -> Figure | None:
     u = np.asarray(data["threshold_uncertainty"], float)
     from matplotlib.ticker import NullFormatter
 
-    fig = Figure(figsize=(6.0, 4.2), layout="constrained")
-    ax = fig.subplots()
-    ax.errorbar(d, c, yerr=np.where(np.isfinite(u), 2 * u, 0.0), fmt="o", capsize=3,
-                label="threshold contrast (error bars k = 2)")
+    from ..report.figures import PALETTE, new_figure
+
+    fig, ax = new_figure(5.6, 3.0)
+    ax.errorbar(d, c, yerr=np.where(np.isfinite(u), u, 0.0), fmt="o", ms=4, capsize=3,
+                color=PALETTE[0], label="threshold contrast ± u (k = 1)")
     fit = data.get("fit")
     if fit is not None:
         grid = np.geomspace(d.min() * 0.8, d.max() * 1.25, 50)
-        ax.plot(grid, fit["a"] * grid ** fit["b"], "--",
+        ax.plot(grid, fit["a"] * grid ** fit["b"], "--", color=PALETTE[1], lw=1.2,
                 label=f"fit C = {fit['a']:.3g} · d^{fit['b']:.2f}")
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xticks(d, [f"{v:g}" for v in d])    # the disks' own diameters, in plain figures
     ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.tick_params(which="both", labelsize=7)       # log axes label their minor ticks too
     ax.set_xlabel("disk diameter (mm)")
     ax.set_ylabel("threshold contrast (volume units)")
-    ax.set_title(f"Contrast-detail (NPW, d' = {data.get('dprime_target', float('nan')):.3f})")
-    ax.legend()
+    ax.set_title(f"Contrast-detail (NPW, d' = {data.get('dprime_target', float('nan')):.3f})",
+                 fontsize=8)
+    ax.legend(fontsize=7, frameon=False)
     return fig
 
 
