@@ -156,18 +156,15 @@ class History:
         """
         if not isinstance(session, SessionRecord):
             raise self._error(f"expected a SessionRecord, got {type(session).__name__}")
-        refused = sorted(set(session.unit_info) - UNIT_INFO_KEYS)
-        if refused:
-            raise self._error(
-                f"unit facts {', '.join(refused)} are not accepted (allowed: "
-                f"{', '.join(sorted(UNIT_INFO_KEYS))}); patient or study identifiers never "
-                "enter the history; pass the metadata through unit_info_from()")
-        refused = sorted(set(session.acquisition) - ACQUISITION_KEYS)
-        if refused:
-            raise self._error(
-                f"acquisition facts {', '.join(refused)} are not accepted (allowed: "
-                f"{', '.join(sorted(ACQUISITION_KEYS))}); pass the metadata through "
-                "acquisition_from()")
+        for what, facts, allowed, picker in (
+                ("unit facts", session.unit_info, UNIT_INFO_KEYS, "unit_info_from"),
+                ("acquisition facts", session.acquisition, ACQUISITION_KEYS, "acquisition_from")):
+            refused = sorted(set(facts) - allowed)
+            if refused:
+                raise self._error(
+                    f"{what} {', '.join(refused)} are not accepted (allowed: "
+                    f"{', '.join(sorted(allowed))}); patient or study identifiers never "
+                    f"enter the history; pass the metadata through {picker}()")
         info = dict(session.unit_info)
         with self._write() as conn:
             row = conn.execute("SELECT info, first_acquired, last_acquired FROM units "

@@ -189,18 +189,19 @@ class SessionRecord:
                 raise InputError(f"measurement '{m.name}' appears twice", field="measurements")
             seen.add(m.name)
         object.__setattr__(self, "measurements", measurements)
-        info = dict(self.unit_info or {})
-        for key, value in info.items():
-            if not isinstance(key, str) or not isinstance(value, str):
-                raise InputError(f"unit facts must be text, got {key!r}: {value!r}",
-                                 field="unit_info")
-        object.__setattr__(self, "unit_info", MappingProxyType(info))
-        facts = dict(self.acquisition or {})
-        for key, value in facts.items():
-            if not isinstance(key, str) or not isinstance(value, str):
-                raise InputError(f"acquisition facts must be text, got {key!r}: {value!r}",
-                                 field="acquisition")
-        object.__setattr__(self, "acquisition", MappingProxyType(facts))
+        object.__setattr__(self, "unit_info", _text_facts(self.unit_info, "unit_info", "unit"))
+        object.__setattr__(self, "acquisition",
+                           _text_facts(self.acquisition, "acquisition", "acquisition"))
+
+
+def _text_facts(facts, field_name: str, what: str) -> Mapping[str, str]:
+    """A read-only copy of ``facts``, refused unless every key and value is text."""
+    out = dict(facts or {})
+    for key, value in out.items():
+        if not isinstance(key, str) or not isinstance(value, str):
+            raise InputError(f"{what} facts must be text, got {key!r}: {value!r}",
+                             field=field_name)
+    return MappingProxyType(out)
 
 
 @dataclass(frozen=True)
