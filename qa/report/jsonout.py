@@ -18,10 +18,8 @@ names and meaning.
 
 from __future__ import annotations
 
-import json
 import math
 
-from ..fileio import write_text_atomic
 from ..session import SessionResult
 
 
@@ -59,7 +57,3 @@ def pose_json(result: SessionResult) -> dict | None:
             "mirrored": bool(pose.mirrored), "residual_mm": _num(pose.residual_mm),
             "fitted_from": list(pose.fitted_from), "note": pose.note}
 
-
-def write_json(result: SessionResult, path, report_path: str | None) -> None:
-    text = json.dumps(session_json(result, report_path), indent=2, ensure_ascii=False)
-    write_text_atomic(path, text + "\n")
