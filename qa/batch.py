@@ -18,6 +18,7 @@ history (SQLite in WAL mode serialises the writers).
 from __future__ import annotations
 
 import csv
+import functools
 import io
 import traceback
 from collections import defaultdict
@@ -354,6 +355,20 @@ def _bar(total: int, show: bool):
 SUMMARY_FIELDS = ("source", "series", "status", "unit", "date", "overall", "report", "reason")
 
 
+@functools.lru_cache(maxsize=256)
+def _source_header(source: str):
+    """The DICOM header of a file, or of the first DICOM file of a folder, or ``None``
+    (read once per source: the summary and the failure lines ask for it again)."""
+    path = Path(source)
+    if path.is_file():
+        files = [path]
+    elif path.is_dir():
+        files = sorted(p for p in path.iterdir() if p.is_file())[:50]
+    else:
+        files = []
+    return next((ds for ds in map(_header, files) if ds is not None), None)
+
+
 def public_text(task: BatchTask, text: str) -> str:
     """``text`` with the patient identifiers of the task's DICOM header cut out.
 
@@ -364,14 +379,8 @@ def public_text(task: BatchTask, text: str) -> str:
     """
     from .io.deidentify import scrub_path
 
-    source = Path(task.source)
-    files = [source] if source.is_file() else sorted(
-        p for p in source.iterdir() if p.is_file()) if source.is_dir() else []
-    for f in files[:50]:
-        ds = _header(f)
-        if ds is not None:
-            return scrub_path(text, ds)
-    return text
+    ds = _source_header(str(task.source))
+    return text if ds is None else scrub_path(text, ds)
 
 
 def summary_csv(outcomes, path) -> Path:
