@@ -48,6 +48,7 @@ from qa import PROJECT_ROOT  # noqa: E402
 from qa.simulate.profiles import load_geometry  # noqa: E402
 from qa.simulate.recon.grid import ReconGrid, plane_taps, sample  # noqa: E402
 from qa.simulate.recon.projector import DbtProjector  # noqa: E402
+from timing import best_of  # noqa: E402
 
 REPEATS = 5
 TARGET_RATIO = 2.5
@@ -115,17 +116,6 @@ def backproject_scipy(geometry, grid, data, *, full_matrix=False):
     return out
 
 
-def best_of(functions, repeats=REPEATS):
-    """Best wall time of each function, calls interleaved so all see the same load."""
-    best = [np.inf] * len(functions)
-    for _ in range(repeats):
-        for i, fn in enumerate(functions):
-            start = time.perf_counter()
-            fn()
-            best[i] = min(best[i], time.perf_counter() - start)
-    return best
-
-
 def peak_mb(method: str) -> tuple[float, float]:
     """Peak resident memory and peak traced allocations (MB) of a fresh process that
     builds the inputs and runs one backprojection."""
@@ -177,7 +167,7 @@ def main() -> int:
     diff = float(np.max(np.abs(ours[inner] - ref[inner])) / np.max(np.abs(ref)))
     print(f"grid.sample loop vs affine_transform: max relative difference {diff:.1e}")
 
-    t_sample, t_single, t_adjoint, t_scipy = best_of([
+    t_sample, t_single, t_adjoint, t_scipy = best_of(repeats=REPEATS, functions=[
         lambda: backproject_sample(geometry, grid, data, threads=2),
         lambda: backproject_sample(geometry, grid, data),
         lambda: projector.adjoint(data),

@@ -24,28 +24,17 @@ exits with status 1 if a target is missed.
 from __future__ import annotations
 
 import sys
-import time
 
 import numpy as np
 from skimage.transform import iradon, radon
 
 from qa.simulate import exact2d, section2d
+from timing import best_of
 
 N = 512
 PIXEL_MM = 0.5
 REPEATS = 7
 N_DISKS = 10
-
-
-def best_of(functions, repeats=REPEATS):
-    """Best wall time of each function, calls interleaved so all see the same load."""
-    best = [np.inf] * len(functions)
-    for _ in range(repeats):
-        for i, fn in enumerate(functions):
-            start = time.perf_counter()
-            fn()
-            best[i] = min(best[i], time.perf_counter() - start)
-    return best
 
 
 def relative_rmse(a, b):
@@ -79,7 +68,7 @@ def main() -> int:
         ours = lambda: section2d.project_parallel(image, angles_deg=angles, pixel_mm=PIXEL_MM,
                                                   n_det=N)
         theirs = lambda: radon(image, a_sk, circle=True, preserve_range=True).T * PIXEL_MM
-        t_o, t_s = best_of([ours, theirs])
+        t_o, t_s = best_of(repeats=REPEATS, functions=[ours, theirs])
         print(f"{n_views} views, forward: ours {t_o * 1e3:.1f} ms, skimage {t_s * 1e3:.1f} ms, "
               f"ratio {t_s / t_o:.2f} (target >= 3)")
         ok &= t_s / t_o >= 3
@@ -113,7 +102,7 @@ def main() -> int:
         rescale = float(section2d.angular_weights_rad(angles).sum()) / np.pi
         fbp_s = lambda: rescale * iradon(sino_s.T / PIXEL_MM, a_sk, circle=True,
                                          preserve_range=True)
-        t_o, t_s = best_of([fbp_o, fbp_s])
+        t_o, t_s = best_of(repeats=REPEATS, functions=[fbp_o, fbp_s])
         e_o = float(np.sqrt(np.mean((fbp_o() - image)[inside] ** 2)))
         e_s = float(np.sqrt(np.mean((fbp_s() - image)[inside] ** 2)))
         print(f"{n_views} views, FBP: ours {t_o * 1e3:.1f} ms, skimage {t_s * 1e3:.1f} ms, "
