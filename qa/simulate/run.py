@@ -38,11 +38,19 @@ def grid_for(phantom: Phantom, geometry: DbtGeometry) -> ReconGrid:
     return ReconGrid.from_field(x, y, z, pixel_mm=pitch, plane_mm=geometry.plane_spacing_mm)
 
 
-#: Roles whose objects are measured, and how far around each (in its own radii) the
-#: measurement reads the image: the background ring of a disk reaches 2.5 radii
-#: (qa/measure/detectability.py); other objects are checked over their own extent.
-_MEASURED_REACH = {"bead": 1.0, "edge": 1.0, "disk": 2.5, "uniform": 1.0, "marker": 1.0,
-                   "insert": 1.0}
+#: Roles whose objects are measured (each checked over its own extent; a disk over its
+#: background ring, see :func:`_reach`).
+_MEASURED_ROLES = frozenset({"bead", "edge", "disk", "uniform", "marker", "insert"})
+
+
+def _reach(phantom: Phantom, role: str) -> float:
+    """How far around an object of ``role`` (in its own radii) the measurement reads."""
+    if role != "disk":
+        return 1.0
+    from ..measure.detectability import DEFAULTS   # the ring's outer radius, as measured
+
+    options = phantom.analysis.get("detectability") or {}
+    return float(options.get("background_outer", DEFAULTS["background_outer"]))
 
 
 def check_detector_covers(phantom: Phantom, geometry: DbtGeometry) -> None:
@@ -62,9 +70,9 @@ def check_detector_covers(phantom: Phantom, geometry: DbtGeometry) -> None:
     u, v = det.u_mm(), det.v_mm()
     signs = np.array([[i, j, k] for i in (-1, 1) for j in (-1, 1) for k in (-1, 1)], float)
     for obj in phantom.objects:
-        reach = _MEASURED_REACH.get(obj.role)
-        if reach is None:
+        if obj.role not in _MEASURED_ROLES:
             continue
+        reach = _reach(phantom, obj.role)
         centre = np.asarray(obj.shape.centre_xyz_mm, float)
         half = np.full(3, obj.shape.bounding_radius_mm)
         half[:2] *= reach
